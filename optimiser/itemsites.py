@@ -1,0 +1,185 @@
+"""Turn a validated case into the item-site table: one row per stocked (site, item).
+
+The columns are the contract in DEVELOPERS.md ("Item-site table"). Everything the numerical models need per
+item-site is resolved here once: which lead time applies, which order cost, which holding and backorder cost,
+which distribution, which target, fixed order quantity and pack size.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from models import demand as md
+from optimiser.case import Case, ancestors, stocked_pairs
+
+__all__ = [
+    "build_itemsites",
+    "through_demand",
+    "ITEMSITE_COLUMNS",
+    "DISTRIBUTION_CODES",
+    "distribution_names",
+]
+
+ITEMSITE_COLUMNS = [
+    "site", "item", "supplier", "upstream", "daily_mean", "daily_sd", "lead_days", "lead_days_sd",
+    "annual_demand", "order_cost", "holding_cost", "backorder_cost", "distribution", "target",
+    "order_quantity", "pack_size", "unit_cost", "volume", "weight",
+]  # fmt: skip
+
+DISTRIBUTION_CODES = {"normal": int(md.NORMAL), "poisson": int(md.POISSON), "negbin": int(md.NEGBIN)}
+
+
+def distribution_names(codes: np.ndarray) -> np.ndarray:
+    """Names (``normal``, ``poisson``, ``negbin``) of an array of distribution codes."""
+    names = {v: k for k, v in DISTRIBUTION_CODES.items()}
+    return np.array([names[int(c)] for c in np.asarray(codes)], dtype=object)
+
+
+def through_demand(itemsites: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """Daily demand mean and variance passing through each item-site: its own plus every stocked site below.
+
+    Demands of different sites are taken as independent, so variances add.
+
+    Parameters
+    ----------
+    itemsites : DataFrame
+        Needs ``site, item, upstream, daily_mean, daily_sd``.
+
+    Returns
+    -------
+    mean, var : ndarray
+        Arrays aligned with the rows of ``itemsites``.
+    """
+    upstream = dict(zip(itemsites["site"], itemsites["upstream"], strict=True))
+    own = itemsites[["site", "item", "daily_mean"]].copy()
+    own["var"] = itemsites["daily_sd"].to_numpy(dtype=float) ** 2
+    parts = [own]
+    for site in own["site"].unique():  # loop over sites (a small dimension), each step over whole arrays
+        rows = own[own["site"] == site]
+        for above in ancestors(upstream, site):
+            parts.append(rows.assign(site=above))
+    total = (
+        pd.concat(parts, ignore_index=True).groupby(["site", "item"], sort=False)[["daily_mean", "var"]].sum()
+    )
+    key = pd.MultiIndex.from_frame(itemsites[["site", "item"]])
+    aligned = total.reindex(key)
+    return aligned["daily_mean"].to_numpy(dtype=float), aligned["var"].to_numpy(dtype=float)
+
+
+def build_itemsites(case: Case) -> pd.DataFrame:
+    """Build the item-site table of a case.
+
+    Parameters
+    ----------
+    case : Case
+        A case from :func:`optimiser.case.load_case`.
+
+    Returns
+    -------
+    DataFrame
+        One row per stocked (site, item) with the columns of :data:`ITEMSITE_COLUMNS`.
+
+    Notes
+    -----
+    * Stocked: the rows of ``stocking.csv``; without it every (site, item) in the demand table and, for each,
+      every site above it.
+    * ``lead_days``: the supplier's lead time at a site with no upstream, the site's transit time below.
+    * ``annual_demand`` = (own daily mean + daily means of every stocked site below) × ``days_per_year``.
+    * ``order_cost``: supplier ``order_cost + line_cost`` at a root site, the site's ``delivery_cost`` below.
+    * ``holding_cost``: ``items.holding_cost`` or ``holding_rate × unit_cost``.
+    * ``backorder_cost``, ``order_quantity``, ``pack_size``, ``target``: ``stocking.csv`` overrides
+      ``items.csv`` overrides ``case.toml``; targets apply only in the service modes.
+    * ``distribution``: ``items.csv``, else the history estimate, else ``case.toml``; ``auto`` is resolved by
+      :func:`models.demand.choose_distribution` on the demand passing through the site.
+
+    Examples
+    --------
+    >>> table = build_itemsites(load_case("cases/quickstart"))  # doctest: +SKIP
+    """
+    settings = case.settings
+    pairs = stocked_pairs(case.sites, case.demand, case.stocking)
+    frame = pairs.merge(
+        case.sites[["site", "upstream", "transit_days", "transit_days_sd", "delivery_cost"]],
+        on="site",
+        how="left",
+    )
+    frame = frame.merge(
+        case.items.rename(
+            columns={
+                "pack_size": "item_pack",
+                "backorder_cost": "item_backorder",
+                "distribution": "item_distribution",
+            }
+        ),
+        on="item",
+        how="left",
+    )
+    frame = frame.merge(
+        case.suppliers[["supplier", "lead_days", "lead_days_sd", "order_cost", "line_cost"]],
+        on="supplier",
+        how="left",
+    )
+    demand = case.demand[["site", "item", "daily_mean", "daily_sd", "distribution"]].rename(
+        columns={"distribution": "estimated_distribution"}
+    )
+    frame = frame.merge(demand, on=["site", "item"], how="left")
+    if case.stocking is not None:
+        stock = case.stocking.rename(
+            columns={c: f"stock_{c}" for c in ("order_quantity", "pack_size", "target", "backorder_cost")}
+        )
+        frame = frame.merge(stock, on=["site", "item"], how="left")
+    else:
+        for c in ("order_quantity", "pack_size", "target", "backorder_cost"):
+            frame[f"stock_{c}"] = np.nan
+
+    n = len(frame)
+    root = (frame["upstream"] == "").to_numpy()
+    out = pd.DataFrame(
+        {
+            "site": frame["site"].astype(object),
+            "item": frame["item"].astype(object),
+            "supplier": frame["supplier"].astype(object),
+            "upstream": frame["upstream"].astype(object),
+            "daily_mean": frame["daily_mean"].fillna(0.0).to_numpy(dtype=float),
+            "daily_sd": frame["daily_sd"].fillna(0.0).to_numpy(dtype=float),
+            "lead_days": np.where(root, frame["lead_days"], frame["transit_days"]).astype(float),
+            "lead_days_sd": np.where(root, frame["lead_days_sd"], frame["transit_days_sd"]).astype(float),
+        }
+    )
+    mean, var = through_demand(out)
+    out["annual_demand"] = mean * settings.days_per_year
+    out["order_cost"] = np.where(
+        root, frame["order_cost"] + frame["line_cost"], frame["delivery_cost"]
+    ).astype(float)
+    holding = frame["holding_cost"].to_numpy(dtype=float)
+    out["holding_cost"] = np.where(np.isnan(holding), settings.holding_rate * frame["unit_cost"], holding)
+    out["backorder_cost"] = (
+        frame["stock_backorder_cost"].fillna(frame["item_backorder"]).to_numpy(dtype=float)
+    )
+
+    # distribution: items.csv, else the estimate, else case.toml; "auto" resolved on the through-demand
+    names = frame["item_distribution"].fillna("").astype(str).to_numpy(dtype=object)
+    estimated = frame["estimated_distribution"].fillna("").astype(str).to_numpy(dtype=object)
+    names = np.where(names == "", estimated, names)
+    names = np.where(names == "", settings.distribution, names)
+    codes = np.zeros(n, dtype=np.int8)
+    for name, code in DISTRIBUTION_CODES.items():
+        codes[names == name] = code
+    auto = names == "auto"
+    if auto.any():
+        chosen = md.choose_distribution(mean[auto], np.sqrt(var[auto]))
+        codes[auto] = np.asarray(chosen, dtype=np.int8)
+    out["distribution"] = codes
+
+    if settings.mode == "cost":
+        out["target"] = np.nan
+    else:
+        default = np.nan if settings.target is None else settings.target
+        out["target"] = frame["stock_target"].fillna(default).to_numpy(dtype=float)
+    out["order_quantity"] = frame["stock_order_quantity"].to_numpy(dtype=float)
+    out["pack_size"] = frame["stock_pack_size"].fillna(frame["item_pack"]).fillna(1.0).to_numpy(dtype=float)
+    out["unit_cost"] = frame["unit_cost"].to_numpy(dtype=float)
+    out["volume"] = frame["volume"].to_numpy(dtype=float)
+    out["weight"] = frame["weight"].to_numpy(dtype=float)
+    return out[ITEMSITE_COLUMNS].reset_index(drop=True)

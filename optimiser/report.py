@@ -1,0 +1,352 @@
+"""Write the outputs of a plan or an evaluation into a folder, atomically.
+
+Layout of the output folder::
+
+    policies.csv              one row per stocked item-site (all sites)
+    sites/<site>/policies.csv that site's rows
+    sites/<site>/summary.md   a short readable summary of the site
+    summary.json              totals per site and for the network, settings, tool version, warnings
+    comparison.csv            today's against the recommended policies (only when the case gives today's)
+    cost_by_site.png          annual cost per site by component
+    safety_stock_vs_service.png  safety stock value against fill rate per item-site
+
+Everything is written into a temporary folder beside the target and renamed into place when complete; on an
+error nothing is left behind. An existing target folder is replaced only when it is empty or was written by
+rqnet (it holds a ``summary.json`` whose ``tool`` is ``"rqnet"``).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import shutil
+import tempfile
+from datetime import UTC, datetime
+from importlib import metadata
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from models import single_site as ss
+from optimiser.errors import OutputError
+from optimiser.itemsites import distribution_names
+from optimiser.plan import PlanResult
+
+__all__ = ["write_outputs", "tool_version", "note_words", "CAUTION"]
+
+TOOL = "rqnet"
+TOP_ITEMS = 5  # items named in a site summary as the ones that drive cost
+
+CAUTION = (
+    "These figures are decision support, computed from the demand, lead times and costs in the case; check "
+    "them against what you know before acting. For critical stock such as medicines or safety equipment, "
+    "follow local regulation and licensed practice, whatever this plan says."
+)
+
+
+def tool_version() -> str:
+    """Installed version of rqnet (``"unknown"`` when not installed as a package)."""
+    try:
+        return metadata.version(TOOL)
+    except metadata.PackageNotFoundError:
+        return "unknown"
+
+
+def note_words(flags: int) -> str:
+    """The note flags of one item-site in words (``""`` when there is none)."""
+    if not flags:
+        return ""
+    words = ss.describe_notes(int(flags))
+    if isinstance(words, str):
+        return words
+    return "; ".join(str(w) for w in words)
+
+
+def _csv_frame(policies: pd.DataFrame) -> pd.DataFrame:
+    """Policies frame as written to CSV: distribution names and notes in words."""
+    out = policies.copy()
+    if np.issubdtype(out["distribution"].dtype, np.number):
+        out["distribution"] = distribution_names(out["distribution"].to_numpy())
+    out["note"] = [note_words(int(f)) if not isinstance(f, str) else f for f in out["note"]]
+    return out
+
+
+def _with_current(frame: pd.DataFrame, current: pd.DataFrame | None) -> pd.DataFrame:
+    if current is None:
+        return frame
+    keep = current[
+        ["site", "item", "reorder_point", "order_quantity", "total_cost", "fill_rate", "cycle_service"]
+    ].rename(columns=lambda c: c if c in ("site", "item") else f"current_{c}")
+    return frame.merge(keep, on=["site", "item"], how="left")
+
+
+def _json_number(value: Any) -> Any:
+    if isinstance(value, float | np.floating):
+        value = float(value)
+        return None if not math.isfinite(value) else round(value, 6)
+    if isinstance(value, np.integer):
+        return int(value)
+    return value
+
+
+def _clean(obj: Any) -> Any:
+    if isinstance(obj, dict):
+        return {str(k): _clean(v) for k, v in obj.items()}
+    if isinstance(obj, list | tuple):
+        return [_clean(v) for v in obj]
+    return _json_number(obj)
+
+
+def _summary_json(result: PlanResult, case_name: str, case_path: str) -> dict[str, Any]:
+    sites = {
+        row["site"]: {k: v for k, v in row.items() if k != "site"}
+        for row in result.site_totals.to_dict(orient="records")
+    }
+    notes = _note_counts(result.policies)
+    out: dict[str, Any] = {
+        "tool": TOOL,
+        "version": tool_version(),
+        "command": result.command,
+        "method": result.method,
+        "created": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "case": {"name": case_name, "path": case_path},
+        "settings": result.settings.as_dict(),
+        "network": result.network,
+        "sites": sites,
+        "notes": notes,
+        "warnings": list(result.warnings),
+    }
+    if result.comparison is not None:
+        out["today"] = {
+            row["site"]: {k: v for k, v in row.items() if k != "site"}
+            for row in result.comparison.to_dict(orient="records")
+        }
+    return _clean(out)
+
+
+def _note_counts(policies: pd.DataFrame) -> dict[str, int]:
+    counts: dict[str, int] = {}
+    for flag, n in policies["note"].value_counts().items():
+        words = note_words(int(flag)) if not isinstance(flag, str) else flag
+        if words:
+            counts[words] = counts.get(words, 0) + int(n)
+    return counts
+
+
+def _money(value: float, currency: str) -> str:
+    if not math.isfinite(value):
+        return "n/a"
+    return f"{value:,.0f} {currency}".strip()
+
+
+def _pct(value: float) -> str:
+    return "n/a" if not math.isfinite(value) else f"{100 * value:.1f} %"
+
+
+def _site_summary(result: PlanResult, site: str, totals: dict[str, Any], frame: pd.DataFrame) -> str:
+    cur = result.settings.currency
+    title = "Plan" if result.command == "plan" else "Evaluation of given policies"
+    lines = [
+        f"# {title} for site {site}",
+        "",
+        f"Case: {result.settings.name}. Service rule: {result.settings.mode.replace('_', ' ')}"
+        + (f", target {result.settings.target:g}" if result.settings.target is not None else "")
+        + ".",
+        "",
+        "## Totals per year",
+        "",
+        "| | |",
+        "|---|---|",
+        f"| item-sites stocked | {totals['item_sites']} |",
+        f"| orders placed | {totals['orders_per_year']:,.1f} |",
+        f"| ordering cost | {_money(totals['ordering_cost'], cur)} |",
+        f"| holding cost, cycle stock | {_money(totals['cycle_stock_cost'], cur)} |",
+        f"| holding cost, safety stock | {_money(totals['safety_stock_cost'], cur)} |",
+        f"| backorder cost | {_money(totals['backorder_cost'], cur)} |",
+        f"| **total cost** | **{_money(totals['total_cost'], cur)}** |",
+        f"| average stock value | {_money(totals['stock_value'], cur)} |",
+        f"| safety stock value | {_money(totals['safety_stock_value'], cur)} |",
+        "",
+        "## Service",
+        "",
+        "Share of demand met at once from stock (fill rate, weighted by demand): "
+        f"{_pct(totals['fill_rate'])}.",
+        f"Share of replenishment cycles without a stockout (cycle service): {_pct(totals['cycle_service'])}.",
+        "",
+    ]
+    if result.comparison is not None and site in set(result.comparison["site"]):
+        row = result.comparison.set_index("site").loc[site]
+        lines += [
+            "## Today's policies against the recommended ones",
+            "",
+            f"On the {int(row['item_sites'])} item-sites with a policy today: today's total cost "
+            f"{_money(row['current_total_cost'], cur)}, recommended "
+            f"{_money(row['recommended_total_cost'], cur)} (saving {_money(row['saving'], cur)} a year); "
+            f"fill rate today {_pct(row['current_fill_rate'])}, "
+            f"recommended {_pct(row['recommended_fill_rate'])}.",
+            "",
+        ]
+    top = frame.sort_values("total_cost", ascending=False).head(TOP_ITEMS)
+    total = totals["total_cost"]
+    lines += [
+        "## Items that drive cost",
+        "",
+        "| item | R | Q | fill rate | total cost | share |",
+        "|---|---|---|---|---|---|",
+    ]
+    for rec in top.itertuples(index=False):
+        share = rec.total_cost / total if total > 0 else float("nan")
+        lines.append(
+            f"| {rec.item} | {rec.reorder_point:,.1f} | {rec.order_quantity:,.1f} | {_pct(rec.fill_rate)} "
+            f"| {_money(rec.total_cost, cur)} | {_pct(share)} |"
+        )
+    notes = _note_counts(frame)
+    if notes:
+        lines += ["", "## Notes", ""] + [f"- {n} item(s): {words}" for words, n in notes.items()]
+    site_warnings = [w for w in result.warnings if site in w or "network" in w or "case.toml" in w]
+    if site_warnings:
+        lines += ["", "## Warnings", ""] + [f"- {w}" for w in site_warnings]
+    lines += ["", "## Caution", "", CAUTION, ""]
+    return "\n".join(lines)
+
+
+def _plots(result: PlanResult, folder: Path) -> list[str]:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    written = []
+    totals = result.site_totals
+    fig, ax = plt.subplots(figsize=(max(5.0, 0.9 * len(totals) + 2), 4))
+    bottom = np.zeros(len(totals))
+    labels = {
+        "ordering_cost": "ordering",
+        "cycle_stock_cost": "holding, cycle stock",
+        "safety_stock_cost": "holding, safety stock",
+        "backorder_cost": "backorders",
+    }
+    for column, label in labels.items():
+        values = totals[column].to_numpy(dtype=float)
+        ax.bar(totals["site"], values, bottom=bottom, label=label)
+        bottom += values
+    ax.set_ylabel(f"annual cost ({result.settings.currency})".replace(" ()", ""))
+    ax.set_title("Annual cost per site by component")
+    ax.legend(fontsize=8)
+    ax.tick_params(axis="x", rotation=30)
+    fig.tight_layout()
+    fig.savefig(folder / "cost_by_site.png", dpi=110)
+    plt.close(fig)
+    written.append("cost_by_site.png")
+
+    joined = result.policies.merge(
+        result.itemsites[["site", "item", "unit_cost", "annual_demand"]], on=["site", "item"]
+    )
+    joined = joined[joined["annual_demand"] > 0]
+    fig, ax = plt.subplots(figsize=(6, 4))
+    for site, part in joined.groupby("site", sort=False):
+        ax.scatter(
+            part["safety_stock"] * part["unit_cost"], part["fill_rate"], s=14, label=str(site), alpha=0.7
+        )
+    ax.set_xlabel(f"safety stock value ({result.settings.currency})".replace(" ()", ""))
+    ax.set_ylabel("fill rate")
+    ax.set_title("Safety stock against service, per item-site")
+    if joined["site"].nunique() <= 10:
+        ax.legend(fontsize=7)
+    fig.tight_layout()
+    fig.savefig(folder / "safety_stock_vs_service.png", dpi=110)
+    plt.close(fig)
+    written.append("safety_stock_vs_service.png")
+    return written
+
+
+def _check_target(out_dir: Path) -> None:
+    if not out_dir.exists():
+        return
+    if not out_dir.is_dir():
+        raise OutputError(f"{out_dir} exists and is not a folder; choose another --out")
+    if not any(out_dir.iterdir()):
+        return
+    marker = out_dir / "summary.json"
+    try:
+        tool = json.loads(marker.read_text(encoding="utf-8")).get("tool")
+    except (OSError, ValueError, AttributeError):
+        tool = None
+    if tool != TOOL:
+        raise OutputError(
+            f"{out_dir} holds files rqnet did not write; choose an empty or new folder for --out"
+        )
+
+
+def write_outputs(
+    result: PlanResult, out_dir: str | Path, *, case_name: str = "", case_path: str = "", plots: bool = True
+) -> list[str]:
+    """Write every output of ``result`` into ``out_dir`` (atomically).
+
+    Parameters
+    ----------
+    result : PlanResult
+        From :func:`optimiser.plan.plan_case` or :func:`optimiser.plan.evaluate_case`.
+    out_dir : str or Path
+        Target folder; created, or replaced when it holds an earlier rqnet output.
+    case_name, case_path : str
+        Shown in ``summary.json``.
+    plots : bool
+        Also draw the PNG plots.
+
+    Returns
+    -------
+    list of str
+        Paths written, relative to ``out_dir``.
+
+    Raises
+    ------
+    OutputError
+        When ``out_dir`` exists and holds files rqnet did not write.
+    """
+    target = Path(out_dir).resolve()
+    _check_target(target)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    temp = Path(tempfile.mkdtemp(prefix=f".{target.name}.tmp-", dir=target.parent))
+    written: list[str] = []
+    try:
+        frame = _csv_frame(result.policies)
+        _with_current(frame, result.current).to_csv(temp / "policies.csv", index=False, float_format="%.6g")
+        written.append("policies.csv")
+        totals = {row["site"]: row for row in result.site_totals.to_dict(orient="records")}
+        for site, part in frame.groupby("site", sort=False):
+            folder = temp / "sites" / str(site)
+            folder.mkdir(parents=True)
+            _with_current(part, result.current).to_csv(
+                folder / "policies.csv", index=False, float_format="%.6g"
+            )
+            (folder / "summary.md").write_text(
+                _site_summary(result, str(site), totals[site], part), encoding="utf-8"
+            )
+            written += [f"sites/{site}/policies.csv", f"sites/{site}/summary.md"]
+        if result.comparison is not None:
+            result.comparison.to_csv(temp / "comparison.csv", index=False, float_format="%.6g")
+            written.append("comparison.csv")
+        summary = _summary_json(result, case_name or result.settings.name, case_path)
+        (temp / "summary.json").write_text(
+            json.dumps(summary, indent=2, ensure_ascii=False) + "\n", encoding="utf-8"
+        )
+        written.append("summary.json")
+        if plots and len(result.policies):
+            written += _plots(result, temp)
+        os.chmod(temp, 0o755)
+        if target.exists():
+            old = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
+            old.rmdir()
+            target.rename(old)
+            temp.rename(target)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            temp.rename(target)
+    except BaseException:
+        shutil.rmtree(temp, ignore_errors=True)
+        raise
+    return written
