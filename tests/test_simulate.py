@@ -1,0 +1,205 @@
+"""Checks of the network simulator against exact results from the literature (computed here with scipy)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import stats
+
+from optimiser.simulate import (
+    DEMAND_COMPOUND,
+    DEMAND_NORMAL_DAILY,
+    compound_parameters,
+    confidence_half_width,
+    simulate_network_arrays,
+)
+
+# A 95% interval misses its target 5% of the time; all checks below use fixed seeds, and allow a small
+# absolute slack on top of the interval for the few comparisons run at once.
+SLACK_SIGMA = 1.5  # widen each 95% half-width by this factor (about 99.7% coverage per check)
+
+
+def _within(sim_mean, half_width, exact, extra=0.0):
+    return np.abs(np.asarray(sim_mean) - np.asarray(exact)) <= SLACK_SIGMA * np.asarray(half_width) + extra
+
+
+# ----------------------------------------------------------------------------------------------------------
+# exact single-site (R, Q), Poisson demand, constant lead time
+# Inventory position uniform on R+1..R+Q, independent of the lead-time demand D ~ Poisson(lambda L);
+# net inventory = IP - D. Fill rate = (1/Q) sum_y P(D <= y - 1); E[on hand] = (1/Q) sum_y E(y - D)+;
+# E[backorders] = (1/Q) sum_y E(D - y)+. Source: Hadley, G. and Whitin, T. M., Analysis of Inventory Systems,
+# 1963 (formula from memory; also Zipkin, Foundations of Inventory Management, 2000).
+# ----------------------------------------------------------------------------------------------------------
+def _exact_single(r, q, mean_ltd):
+    y = np.arange(r + 1, r + q + 1)
+    k = np.arange(0, int(mean_ltd + 20 * np.sqrt(mean_ltd + 1) + r + q + 50))
+    pmf = stats.poisson.pmf(k, mean_ltd)
+    fill = np.mean(stats.poisson.cdf(y - 1, mean_ltd))
+    on_hand = np.mean([np.sum(np.maximum(v - k, 0) * pmf) for v in y])
+    back = np.mean([np.sum(np.maximum(k - v, 0) * pmf) for v in y])
+    return fill, on_hand, back
+
+
+@pytest.mark.parametrize("r,q,lam,lead", [(3, 4, 2.0, 1.5), (-1, 5, 0.5, 3.0), (10, 1, 4.0, 2.0)])
+def test_single_site_poisson_matches_exact(r, q, lam, lead):
+    sim = simulate_network_arrays([-1], r, q, demand_mean=lam, lead_mean=lead, n_items=1,
+                                  horizon_days=40_000.0, warmup_days=50.0, replications=8, seed=11)
+    fill, on_hand, back = _exact_single(r, q, lam * lead)
+    assert _within(sim.mean("fill_rate"), sim.half_width("fill_rate"), fill).all()
+    assert _within(sim.mean("on_hand"), sim.half_width("on_hand"), on_hand).all()
+    assert _within(sim.mean("backorders"), sim.half_width("backorders"), back).all()
+    # orders per day = lambda / Q exactly in the long run (renewal argument)
+    assert _within(sim.mean("orders_per_day"), sim.half_width("orders_per_day"), lam / q, 1e-3).all()
+    # intervals are informative: tight compared with the values checked
+    assert float(sim.half_width("on_hand")[0, 0]) < 0.02 * max(on_hand, 1.0)
+
+
+def test_many_items_at_once_match_each_exact():
+    """Different items in one call are simulated independently with their own parameters."""
+    r = np.array([[0], [2], [5], [8]])
+    q = np.array([[3], [1], [6], [2]])
+    lam = np.array([[0.3], [1.0], [2.0], [3.0]])
+    lead = np.array([[2.0], [1.0], [2.5], [2.0]])
+    sim = simulate_network_arrays(np.array([-1]), r, q, demand_mean=lam, lead_mean=lead,
+                                  horizon_days=30_000.0, warmup_days=50.0, replications=6, seed=5)
+    for i in range(4):
+        fill, on_hand, _ = _exact_single(int(r[i, 0]), int(q[i, 0]), float(lam[i, 0] * lead[i, 0]))
+        assert _within(sim.mean("fill_rate")[i, 0], sim.half_width("fill_rate")[i, 0], fill)
+        assert _within(sim.mean("on_hand")[i, 0], sim.half_width("on_hand")[i, 0], on_hand)
+
+
+# ----------------------------------------------------------------------------------------------------------
+# exact two-echelon, one-for-one stores, Poisson demand, constant lead times, FCFS
+# Graves, S. C., "A multi-echelon inventory model for a repairable item with one-for-one replenishment",
+# Management Science 31, 1985; Axsäter, S., "Simple solution procedures for a class of two-echelon inventory
+# problems", Operations Research 38, 1990: B0 = (D0(L0) - S0)+, D0 ~ Poisson(lambda0 L0); store i's share of
+# B0 is Binomial(B0, lambda_i / lambda0); store outstanding = share + Poisson(lambda_i L_i). With a warehouse
+# batch Q0 the warehouse position is uniform on R0+1..R0+Q0 and the results average over S0 in that range.
+# ----------------------------------------------------------------------------------------------------------
+def _exact_two_echelon(r0, q0, lead0, lam, lead, s_store):
+    lam = np.asarray(lam, float)
+    lam0 = lam.sum()
+    kmax = int(lam0 * lead0 + 30 * np.sqrt(lam0 * lead0 + 1) + 60 + abs(r0) + q0)
+    k = np.arange(kmax)
+    p_d0 = stats.poisson.pmf(k, lam0 * lead0)
+    wh_on_hand = 0.0
+    out = [np.zeros(kmax) for _ in lam]
+    for s0 in range(r0 + 1, r0 + q0 + 1):
+        wh_on_hand += np.sum(np.maximum(s0 - k, 0) * p_d0) / q0
+        p_b0 = np.zeros(kmax)
+        b = np.maximum(k - s0, 0)
+        np.add.at(p_b0, b, p_d0)
+        for i, li in enumerate(lam):
+            share = np.zeros(kmax)
+            for bb in np.nonzero(p_b0 > 1e-15)[0]:
+                share[: bb + 1] += p_b0[bb] * stats.binom.pmf(np.arange(bb + 1), bb, li / lam0)
+            tot = np.convolve(share, stats.poisson.pmf(k, li * lead[i]))[:kmax]
+            out[i] += tot / q0
+    res = []
+    for i in range(len(lam)):
+        o = out[i]
+        res.append((
+            float(np.sum(o[: s_store[i]])),  # fill rate: outstanding <= S - 1
+            float(np.sum(np.maximum(s_store[i] - k, 0) * o)),
+            float(np.sum(np.maximum(k - s_store[i], 0) * o)),
+        ))
+    return wh_on_hand, res
+
+
+@pytest.mark.parametrize("r0,q0", [(2, 1), (0, 4)])
+def test_two_echelon_one_for_one_stores_match_exact(r0, q0):
+    lam = [0.6, 0.3, 0.1]
+    lead0, lead = 3.0, [1.0, 2.0, 1.5]
+    s_store = [2, 1, 1]  # S_i = R_i + 1 with Q_i = 1
+    parent = np.array([-1, 0, 0, 0])
+    rop = np.array([r0, s_store[0] - 1, s_store[1] - 1, s_store[2] - 1])
+    oq = np.array([q0, 1, 1, 1])
+    sim = simulate_network_arrays(parent, rop, oq, demand_mean=np.array([0.0] + lam),
+                                  lead_mean=np.array([lead0] + lead), n_items=1, horizon_days=60_000.0,
+                                  warmup_days=100.0, replications=8, seed=3)
+    wh_oh, res = _exact_two_echelon(r0, q0, lead0, lam, lead, s_store)
+    assert _within(sim.mean("on_hand")[0, 0], sim.half_width("on_hand")[0, 0], wh_oh)
+    for i in range(3):
+        fill, on_hand, back = res[i]
+        m = {name: (sim.mean(name)[0, i + 1], sim.half_width(name)[0, i + 1])
+             for name in ("fill_rate", "on_hand", "backorders")}
+        assert _within(*m["fill_rate"], fill), (i, m["fill_rate"], fill)
+        assert _within(*m["on_hand"], on_hand), (i, m["on_hand"], on_hand)
+        assert _within(*m["backorders"], back), (i, m["backorders"], back)
+    # Little's law at the warehouse: mean delay of store units = E[B0] / lambda0 (Sherbrooke 1968, METRIC)
+    delay = sim.mean("store_delay")[0, 1:]
+    wh_bo = sim.mean("backorders")[0, 0]
+    assert np.allclose(delay, wh_bo / sum(lam), rtol=0.05)
+
+
+# ----------------------------------------------------------------------------------------------------------
+# determinism and settings
+# ----------------------------------------------------------------------------------------------------------
+def _small_network(**kw):
+    parent = np.array([-1, 0, 0])
+    args = dict(demand_mean=np.array([0.0, 1.0, 2.0]), lead_mean=np.array([5.0, 1.0, 2.0]),
+                lead_sd=np.array([2.0, 0.5, 1.0]), n_items=3, horizon_days=3000.0, warmup_days=100.0,
+                replications=3, seed=42)
+    args.update(kw)
+    return simulate_network_arrays(parent, np.array([6, 1, 3]), np.array([12, 3, 4]), **args)
+
+
+def test_same_seed_same_result_and_thread_independent():
+    a = _small_network()
+    b = _small_network()
+    c = _small_network(parallel=False)
+    d = _small_network(seed=43)
+    assert np.array_equal(a.raw, b.raw)
+    assert np.array_equal(a.raw, c.raw)
+    assert not np.array_equal(a.raw, d.raw)
+    # replications differ from each other
+    assert not np.array_equal(a.raw[0], a.raw[1])
+
+
+def test_confidence_half_width_matches_t_interval():
+    x = np.array([1.0, 2.0, 4.0, 7.0])
+    # scipy's t interval (reference library)
+    lo, hi = stats.t.interval(0.95, 3, loc=x.mean(), scale=stats.sem(x))
+    assert np.isclose(confidence_half_width(x), (hi - lo) / 2)
+    assert np.isnan(confidence_half_width(np.array([3.0])))
+
+
+def test_compound_demand_moments():
+    """Compound Poisson with logarithmic sizes: daily counts are negative binomial with the given mean and sd
+    (Quenouille 1949); checked on the simulated demand per day and on the warehouse-free single site."""
+    rate, theta = compound_parameters(np.array([3.0, 2.0]), np.array([3.0, 1.0]))
+    assert theta[1] == 0.0 and rate[1] == 2.0  # variance <= mean: plain Poisson
+    mean_size = -theta[0] / ((1 - theta[0]) * np.log(1 - theta[0]))
+    assert np.isclose(rate[0] * mean_size, 3.0)
+    sim = simulate_network_arrays([-1], 5, 10, demand_mean=3.0, demand_sd=3.0, demand_model=DEMAND_COMPOUND,
+                                  lead_mean=1.0, n_items=1, horizon_days=50_000.0, replications=4, seed=9)
+    assert _within(sim.mean("demand_per_day"), sim.half_width("demand_per_day"), 3.0).all()
+
+
+def test_normal_daily_buckets_mean():
+    """Normal daily demand rounded to whole units (common practice): with sd small against the mean the
+    rounding and truncation keep the mean (half-integers are measure zero)."""
+    sim = simulate_network_arrays([-1], 20, 30, demand_mean=10.0, demand_sd=2.0,
+                                  demand_model=DEMAND_NORMAL_DAILY, lead_mean=2.0, n_items=1,
+                                  horizon_days=20_000.0, replications=4, seed=2)
+    assert _within(sim.mean("demand_per_day"), sim.half_width("demand_per_day"), 10.0, 1e-3).all()
+
+
+def test_zero_demand_item_is_quiet():
+    sim = simulate_network_arrays([-1, 0], [2, 1], [5, 2], demand_mean=[0.0, 0.0], lead_mean=[3.0, 1.0],
+                                  n_items=1, horizon_days=1000.0, replications=2, seed=1)
+    assert np.all(np.isnan(sim.fill_rate))
+    assert np.allclose(sim.mean("on_hand"), [[7.0, 3.0]])
+    assert np.all(sim.mean("orders_per_day") == 0)
+
+
+def test_rejects_bad_inputs():
+    with pytest.raises(ValueError, match="order_quantity"):
+        simulate_network_arrays([-1], 2, 0, demand_mean=1.0, lead_mean=1.0, n_items=1, horizon_days=10.0)
+    with pytest.raises(ValueError, match="cycle"):
+        simulate_network_arrays([1, 0], 2, 1, demand_mean=1.0, lead_mean=1.0, n_items=1, horizon_days=10.0)
+    with pytest.raises(ValueError, match="warmup_days"):
+        simulate_network_arrays([-1], 2, 1, demand_mean=1.0, lead_mean=1.0, n_items=1, horizon_days=10.0,
+                                warmup_days=10.0)
+
+
