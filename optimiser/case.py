@@ -498,16 +498,28 @@ def stocked_pairs(sites: pd.DataFrame, demand: pd.DataFrame, stocking: pd.DataFr
 
 # --------------------------------------------------------------------------------------------- history
 
+#: fewest days a history may span (a standard deviation needs two days)
+MIN_HISTORY_DAYS = 2
+#: a history shorter than this many days gets a warning
+SHORT_HISTORY_DAYS = 28
 
-def estimate_from_history(history: pd.DataFrame, pairs_hint: pd.DataFrame | None = None) -> pd.DataFrame:
+
+def estimate_from_history(history: pd.DataFrame) -> pd.DataFrame:
     """Daily demand moments per (site, item) from a sales history.
 
     Days without a sale count as zero over the history's whole date span (first to last date in the file,
-    both included). Several lines for the same date, site and item are added up. The moments, the
-    intermittency class (ADI / CV², Syntetos & Boylan 2005) and the distribution code come from
-    :func:`models.demand.estimate_demand`.
+    both included). Several lines for the same date, site and item are added up. The moments and the
+    intermittency class (ADI / CV², Syntetos & Boylan 2005) come from :func:`models.demand.estimate_demand`.
+    Intermittent and lumpy series get a count distribution (Poisson, or negative binomial when the daily
+    variance exceeds the mean) in the ``distribution`` column; the others leave it empty so the item's or the
+    case's default applies.
+
+    Returns
+    -------
+    DataFrame
+        ``site, item, daily_mean, daily_sd, demand_class, distribution, history_days``.
     """
-    from models.demand import estimate_demand
+    from models import demand as md
 
     start = history["date"].min()
     end = history["date"].max()
@@ -518,21 +530,19 @@ def estimate_from_history(history: pd.DataFrame, pairs_hint: pd.DataFrame | None
     day_index = (totals["date"] - start).dt.days.to_numpy()
     matrix = np.zeros((len(keys), n_days), dtype=float)
     matrix[key_index, day_index] = totals["quantity"].to_numpy(dtype=float)
-    estimate = estimate_demand(matrix)
+    estimate = md.estimate_demand(matrix)
     out = keys.copy()
-    out["daily_mean"] = np.asarray(estimate.daily_mean, dtype=float)
-    out["daily_sd"] = np.asarray(estimate.daily_sd, dtype=float)
-    out["demand_class"] = [str(c) for c in np.asarray(estimate.demand_class)]
-    out["distribution"] = [_distribution_name(int(c)) for c in np.asarray(estimate.distribution)]
+    mean = np.asarray(estimate.daily_mean, dtype=float)
+    sd = np.asarray(estimate.daily_sd, dtype=float)
+    classes = np.asarray(estimate.demand_class)
+    out["daily_mean"] = mean
+    out["daily_sd"] = sd
+    out["demand_class"] = [md.CLASS_NAMES[int(c)] for c in classes]
+    count = md.choose_distribution(mean, sd * sd, "auto", demand_class=np.full(len(mean), md.INTERMITTENT))
+    sporadic = (classes == md.INTERMITTENT) | (classes == md.LUMPY)
+    out["distribution"] = np.where(sporadic, [md.DISTRIBUTION_NAMES[int(c)] for c in count], "")
     out["history_days"] = n_days
     return out
-
-
-def _distribution_name(code: int) -> str:
-    from models import demand as md
-
-    names = {int(md.NORMAL): "normal", int(md.POISSON): "poisson", int(md.NEGBIN): "negbin"}
-    return names[code]
 
 
 # --------------------------------------------------------------------------------------------- policies

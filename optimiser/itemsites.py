@@ -91,7 +91,8 @@ def build_itemsites(case: Case) -> pd.DataFrame:
     * ``backorder_cost``, ``order_quantity``, ``pack_size``, ``target``: ``stocking.csv`` overrides
       ``items.csv`` overrides ``case.toml``; targets apply only in the service modes.
     * ``distribution``: ``items.csv``, else the history estimate, else ``case.toml``; ``auto`` is resolved by
-      :func:`models.demand.choose_distribution` on the demand passing through the site.
+      :func:`models.demand.choose_distribution` on the lead-time demand passing through the site (and, for
+      demand estimated from history, its intermittency class).
 
     Examples
     --------
@@ -120,7 +121,7 @@ def build_itemsites(case: Case) -> pd.DataFrame:
         on="supplier",
         how="left",
     )
-    demand = case.demand[["site", "item", "daily_mean", "daily_sd", "distribution"]].rename(
+    demand = case.demand[["site", "item", "daily_mean", "daily_sd", "distribution", "demand_class"]].rename(
         columns={"distribution": "estimated_distribution"}
     )
     frame = frame.merge(demand, on=["site", "item"], how="left")
@@ -168,7 +169,12 @@ def build_itemsites(case: Case) -> pd.DataFrame:
         codes[names == name] = code
     auto = names == "auto"
     if auto.any():
-        chosen = md.choose_distribution(mean[auto], np.sqrt(var[auto]))
+        ltd_mean, ltd_sd = md.lead_time_demand(mean, np.sqrt(var), out["lead_days"], out["lead_days_sd"])
+        class_codes = {name: code for code, name in md.CLASS_NAMES.items()}
+        demand_class = np.array([class_codes.get(c, -1) for c in frame["demand_class"].fillna("")])
+        chosen = md.choose_distribution(
+            ltd_mean[auto], ltd_sd[auto] ** 2, "auto", demand_class=demand_class[auto]
+        )
         codes[auto] = np.asarray(chosen, dtype=np.int8)
     out["distribution"] = codes
 
