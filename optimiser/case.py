@@ -295,13 +295,13 @@ def _parse_cell(raw: str, col: _Col, label: str, row: int) -> Any:
         )
     if math.isinf(value):
         raise CaseError(label, "must be finite", row=row, column=col.name, value=raw)
-    if col.minimum is not None and not col.signed:
-        if value < col.minimum or (col.strict and value <= col.minimum):
-            raise CaseError(label, col.rule_text(), row=row, column=col.name, value=raw)
-    if col.below_one and value >= 1.0:
+    if col.below_one and not 0.0 < value < 1.0:
         raise CaseError(
             label, "a service target must lie strictly between 0 and 1", row=row, column=col.name, value=raw
         )
+    if col.minimum is not None and not col.signed:
+        if value < col.minimum or (col.strict and value <= col.minimum):
+            raise CaseError(label, col.rule_text(), row=row, column=col.name, value=raw)
     if col.integer and value != round(value):
         raise CaseError(label, "must be a whole number", row=row, column=col.name, value=raw)
     return value
@@ -677,13 +677,22 @@ def load_case(path: str | Path) -> Case:
             raise CaseError("history.csv", "no sales lines given", row=2)
         _check_known(history, "site", sites["site"], "history.csv", "site", "sites.csv")
         _check_known(history, "item", items["item"], "history.csv", "item", "items.csv")
-        demand = estimate_from_history(history)
-        source = "history.csv"
-        span = int(demand["history_days"].iloc[0])
-        if span < 28:
+        span = int((history["date"].max() - history["date"].min()).days) + 1
+        if span < MIN_HISTORY_DAYS:
+            last = history.loc[history["date"].idxmax()]
+            raise CaseError(
+                "history.csv",
+                f"the dates must span at least {MIN_HISTORY_DAYS} days",
+                row=int(last["rownum"]),
+                column="date",
+                value=str(last["date"].date()),
+            )
+        if span < SHORT_HISTORY_DAYS:
             warnings.append(
                 f"history.csv covers only {span} days; estimates from so short a history are rough"
             )
+        demand = estimate_from_history(history)
+        source = "history.csv"
         demand["rownum"] = 0
     elif demand_path.is_file():
         demand = _read_csv(demand_path, "demand.csv", DEMAND_COLUMNS, warnings)

@@ -22,6 +22,7 @@ import sys
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from importlib import metadata
 from pathlib import Path
 
 from optimiser.errors import CaseError, InfeasibleError, OutputError, SolverError
@@ -96,12 +97,13 @@ def _plan_arguments(parser: argparse.ArgumentParser) -> None:
 
 def _run_plan(args: argparse.Namespace) -> int:
     from optimiser.case import load_case
-    from optimiser.plan import plan_case
-    from optimiser.report import write_outputs
 
     say = progress_printer(args)
     say(f"reading case {args.case}")
     case = load_case(args.case)
+    from optimiser.plan import plan_case
+    from optimiser.report import write_outputs
+
     result = plan_case(case, progress=say)
     say(f"writing results to {args.out}")
     write_outputs(
@@ -249,14 +251,15 @@ def _evaluate_arguments(parser: argparse.ArgumentParser) -> None:
 
 def _run_evaluate(args: argparse.Namespace) -> int:
     from optimiser.case import load_case, load_policies_for_case
-    from optimiser.plan import evaluate_case
-    from optimiser.report import write_outputs
 
     say = progress_printer(args)
     say(f"reading case {args.case}")
     case = load_case(args.case)
     say(f"reading policies {args.policies}")
     policies = load_policies_for_case(case, args.policies)
+    from optimiser.plan import evaluate_case
+    from optimiser.report import write_outputs
+
     result = evaluate_case(case, policies, label=args.policies.name, progress=say)
     say(f"writing results to {args.out}")
     write_outputs(
@@ -296,9 +299,11 @@ def build_parser() -> argparse.ArgumentParser:
         "central warehouse and the branches it supplies. Start with 'rqnet check CASE', then "
         "'rqnet plan CASE --out DIR'. 'rqnet COMMAND --help' explains each command.",
     )
-    from optimiser.report import tool_version
-
-    parser.add_argument("--version", action="version", version=f"rqnet {tool_version()}")
+    try:
+        version = metadata.version("rqnet")
+    except metadata.PackageNotFoundError:
+        version = "unknown"
+    parser.add_argument("--version", action="version", version=f"rqnet {version}")
     common = argparse.ArgumentParser(add_help=False)
     common.add_argument("-q", "--quiet", action="store_true", help="no progress lines on stderr")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
