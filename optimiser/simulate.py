@@ -26,8 +26,17 @@ Definitions of the KPIs (all counted after the warm-up):
 
 from __future__ import annotations
 
+import json
+import os
+import shutil
+import sys
+import tempfile
+import time
 import warnings
+from collections.abc import Callable
 from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -43,6 +52,7 @@ __all__ = [
     "NetworkSimulation",
     "compound_parameters",
     "confidence_half_width",
+    "replication_seeds",
     "simulate_network_arrays",
 ]
 
@@ -84,7 +94,8 @@ def confidence_half_width(values: np.ndarray, axis: int = 0, confidence: float =
     """
     v = np.asarray(values, dtype=float)
     k = np.sum(~np.isnan(v), axis=axis)
-    with np.errstate(invalid="ignore", divide="ignore"):
+    with np.errstate(invalid="ignore", divide="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
         if v.shape[axis] > 1:
             sd = np.nanstd(v, axis=axis, ddof=1)
         else:
@@ -232,6 +243,8 @@ def simulate_network_arrays(
     trace_items=None,
     trace_step_days: float = 1.0,
     parallel: bool = True,
+    task_seeds=None,
+    progress: Callable[[int, int], None] | None = None,
 ) -> NetworkSimulation:
     """Simulate (R, Q) / order-up-to policies on a site forest for many items and replications.
 
@@ -278,6 +291,11 @@ def simulate_network_arrays(
         Items whose on hand and backorders per site are recorded on replication 0 every ``trace_step_days``.
     parallel : bool
         Run the tasks with numba's parallel loop (True) or on one thread.
+    task_seeds : array_like of int, (K, n), optional
+        Explicit seed of every (replication, item) task, instead of drawing them from ``seed``.
+    progress : callable, optional
+        Called as ``progress(done, K)`` after each replication; with it the replications run one after the
+        other (items in parallel), without it all tasks share one parallel loop.
 
     Returns
     -------
@@ -375,10 +393,12 @@ def simulate_network_arrays(
         raise ValueError(f"replications: must be >= 1; got {replications}")
     k_rep = int(replications)
 
-    rep_seqs = np.random.SeedSequence(int(seed)).spawn(k_rep)
-    seeds = np.empty((k_rep, n), dtype=np.int64)
-    for k, ss in enumerate(rep_seqs):
-        seeds[k] = np.random.Generator(np.random.PCG64(ss)).integers(0, 2**32 - 1, size=n, dtype=np.int64)
+    if task_seeds is None:
+        seeds = replication_seeds(seed, k_rep, n)
+    else:
+        seeds = np.asarray(task_seeds, dtype=np.int64)
+        if seeds.shape != (k_rep, n) or np.any((seeds < 0) | (seeds >= 2**32)):
+            raise ValueError(f"task_seeds: need shape ({k_rep}, {n}) with values in [0, 2**32)")
 
     tr_items = np.asarray([] if trace_items is None else trace_items, dtype=np.int64).ravel()
     if np.any((tr_items < 0) | (tr_items >= n)):
@@ -393,31 +413,45 @@ def simulate_network_arrays(
 
     stats = np.zeros((k_rep, n, s_count, _k.N_STATS))
     status = np.zeros((k_rep, n), dtype=np.int64)
-    mask = np.ones((k_rep, n), dtype=np.bool_)
-    heap_cap, queue_cap = HEAP_CAPACITY, QUEUE_CAPACITY
     runner = _k.run_tasks if parallel else _k.run_tasks_serial
+    caps = [HEAP_CAPACITY, QUEUE_CAPACITY]
     retries = 0
-    while True:
-        runner(par, act, rop, oq, per, upto, phase, model, rate, theta, dmean, dsd, lt_m, lt_s,
-               bool(partial_shipments), bool(orders_cross), float(horizon_days), float(warmup_days), seeds,
-               heap_cap, queue_cap, mask, trace_row, float(trace_step_days), trace_oh, trace_bo, stats,
-               status)
-        bad = status != _k.STATUS_OK
-        if not bad.any():
-            break
-        if np.any(status == _k.STATUS_HEAP_FULL):
-            heap_cap *= 4
-        if np.any(status == _k.STATUS_QUEUE_FULL):
-            queue_cap *= 4
-        if max(heap_cap, queue_cap) > MAX_CAPACITY:
-            raise ValueError("simulation: more than MAX_CAPACITY shipments or waiting orders at once; "
-                             "check the policies (order quantities far below demand?)")
-        mask = bad
-        status[:] = 0
-        retries += 1
+    blocks = [np.arange(k_rep)] if progress is None else [np.array([k]) for k in range(k_rep)]
+    for done, reps in enumerate(blocks, start=1):
+        mask = np.zeros((k_rep, n), dtype=np.bool_)
+        mask[reps] = True
+        while True:
+            runner(par, act, rop, oq, per, upto, phase, model, rate, theta, dmean, dsd, lt_m, lt_s,
+                   bool(partial_shipments), bool(orders_cross), float(horizon_days), float(warmup_days),
+                   seeds, caps[0], caps[1], mask, trace_row, float(trace_step_days), trace_oh, trace_bo,
+                   stats, status)
+            bad = status != _k.STATUS_OK
+            if not bad.any():
+                break
+            if np.any(status == _k.STATUS_HEAP_FULL):
+                caps[0] *= 4
+            if np.any(status == _k.STATUS_QUEUE_FULL):
+                caps[1] *= 4
+            if max(caps) > MAX_CAPACITY:
+                raise ValueError(f"simulation: more than {MAX_CAPACITY} shipments or waiting orders at once "
+                                 "in one run; check the policies (order quantities far below demand?)")
+            mask = bad
+            status[:] = 0
+            retries += 1
+        if progress is not None:
+            progress(done if len(blocks) > 1 else k_rep, k_rep)
 
     return _summarise(stats, act, horizon_days - warmup_days, seeds, tr_items, trace_oh, trace_bo,
                       warmup_days, trace_step_days, n_samples, retries)
+
+
+def replication_seeds(seed: int, replications: int, n_items: int) -> np.ndarray:
+    """Task seeds (K, n): one numpy Generator per replication (``SeedSequence(seed).spawn(K)``) draws one
+    32-bit seed per item. Item i's seeds do not depend on how many items follow it."""
+    out = np.empty((replications, n_items), dtype=np.int64)
+    for k, ss in enumerate(np.random.SeedSequence(int(seed)).spawn(replications)):
+        out[k] = np.random.Generator(np.random.PCG64(ss)).integers(0, 2**32 - 1, size=n_items, dtype=np.int64)
+    return out
 
 
 def _summarise(stats, act, measured, seeds, tr_items, trace_oh, trace_bo, warmup, step, n_samples, retries):
@@ -446,3 +480,530 @@ def _summarise(stats, act, measured, seeds, tr_items, trace_oh, trace_bo, warmup
         retries=retries,
     )
 
+
+
+# ============================================================================================================
+# application layer: item-site table + policies -> simulation table
+# ============================================================================================================
+
+#: simulated KPI -> column of the policies frame holding the planned figure
+PLANNED_COLUMNS = {
+    "fill_rate": "fill_rate",
+    "cycle_service": "cycle_service",
+    "on_hand": "expected_on_hand",
+    "backorders": "expected_backorders",
+    "orders_per_year": "orders_per_year",
+    "store_delay_days": "expected_delay_days",
+    "ordering_cost": "ordering_cost",
+    "holding_cost": "holding_cost",
+    "backorder_cost": "backorder_cost",
+    "total_cost": "total_cost",
+}
+KPI_COLUMNS = list(PLANNED_COLUMNS)
+DEMAND_MODELS = ("auto", "poisson", "normal_daily")
+PLANNED_SLACK = 1e-9  # a planned figure equal to an interval end counts as inside
+
+
+@dataclass(frozen=True)
+class SimulationOutcome:
+    """What :func:`run_simulation` produced.
+
+    Attributes
+    ----------
+    table : DataFrame
+        One row per (site, item): simulated KPIs (mean and ``*_ci`` 95% half-width), the planned figures
+        (``planned_*``) and ``outside_interval`` naming the KPIs whose planned figure lies outside the
+        interval.
+    traces : DataFrame
+        ``item, site, day, on_hand, backorders`` sampled on replication 0 (empty when no item was traced).
+    info : dict
+        Settings of the run and totals (demand events, seconds, ...).
+    """
+
+    table: Any
+    traces: Any
+    info: dict[str, Any]
+
+
+def _site_order(itemsites) -> tuple[list[str], dict[str, int], np.ndarray]:
+    upstream = dict(zip(itemsites["site"], itemsites["upstream"], strict=False))
+    sites: list[str] = []
+    for site in itemsites["site"]:
+        if site not in sites:
+            sites.append(site)
+    for up in list(upstream.values()):
+        if up and up not in sites:
+            sites.append(up)
+    index = {site: i for i, site in enumerate(sites)}
+    parent = np.array([index[upstream[s]] if upstream.get(s) else -1 for s in sites], dtype=np.int64)
+    return sites, index, parent
+
+
+def run_simulation(
+    itemsites,
+    policies,
+    settings,
+    *,
+    years: float = 5.0,
+    warmup_years: float = 0.5,
+    replications: int = 10,
+    seed: int = 0,
+    partial_shipments: bool = True,
+    orders_cross: bool = False,
+    demand_model: str = "auto",
+    trace_items=None,
+    trace_step_days: float = 1.0,
+    progress: Callable[[str], None] | None = None,
+) -> SimulationOutcome:
+    """Simulate a policies frame on the network of an item-site table.
+
+    Parameters
+    ----------
+    itemsites : DataFrame
+        From :func:`optimiser.itemsites.build_itemsites` (columns ``site, item, upstream, daily_mean,
+        daily_sd, lead_days, lead_days_sd, order_cost, holding_cost, backorder_cost``).
+    policies : DataFrame
+        ``site, item, reorder_point, order_quantity`` for every row of ``itemsites``; planned figures in the
+        ``policies.csv`` columns (``fill_rate, cycle_service, expected_on_hand, expected_backorders,
+        orders_per_year, expected_delay_days``, costs) are copied beside the simulated ones where present.
+    settings : Settings
+        ``days_per_year`` and ``backorder_basis`` are used.
+    years, warmup_years : float
+        Simulated years per replication, of which the first ``warmup_years`` are discarded.
+    replications : int
+        Independent replications (>= 2 for confidence intervals).
+    seed : int
+        Master seed (see :func:`simulate_network_arrays`).
+    partial_shipments, orders_cross : bool
+        See :func:`simulate_network_arrays`.
+    demand_model : str
+        ``"auto"``: Poisson where the daily variance does not exceed the mean, compound Poisson with
+        logarithmic sizes (negative binomial counts, same mean and variance) where it does; ``"poisson"``;
+        ``"normal_daily"``: normal per day rounded to whole units (common practice).
+    trace_items : list of str, optional
+        Items whose on hand and backorders per site are recorded (replication 0).
+    progress : callable, optional
+        Receives a line of text after each replication.
+
+    Returns
+    -------
+    SimulationOutcome
+
+    Examples
+    --------
+    >>> out = run_simulation(table, policies, case.settings, years=2, replications=5)  # doctest: +SKIP
+    >>> out.table[["site", "item", "fill_rate", "fill_rate_ci"]]  # doctest: +SKIP
+
+    Notes
+    -----
+    Annual figures use ``days_per_year``: orders per year = orders per day x days_per_year; ordering cost =
+    orders per year x order cost; holding cost = mean on hand x holding cost; backorder cost = units short
+    per year x cost per unit (basis ``per_unit``) or mean backorders x cost per unit-year
+    (``per_unit_year``), 0 where no backorder cost is given. Costs are computed per replication, then
+    averaged, so each carries its own interval.
+
+    References
+    ----------
+    Law, A. M., Simulation Modeling and Analysis, 5th ed., 2015.
+    """
+    import pandas as pd
+
+    t_start = time.perf_counter()
+    need = ["site", "item", "upstream", "daily_mean", "daily_sd", "lead_days", "lead_days_sd", "order_cost",
+            "holding_cost", "backorder_cost"]
+    missing = [c for c in need if c not in itemsites.columns]
+    if missing:
+        raise ValueError(f"itemsites: missing columns {missing}")
+    for c in ("site", "item", "reorder_point", "order_quantity"):
+        if c not in policies.columns:
+            raise ValueError(f"policies: missing column {c!r}")
+    if demand_model not in DEMAND_MODELS:
+        raise ValueError(f"demand_model: must be one of {DEMAND_MODELS}; got {demand_model!r}")
+    if not (np.isfinite(years) and years > 0):
+        raise ValueError(f"years: must be > 0; got {years}")
+    if not (0 <= warmup_years < years):
+        raise ValueError(f"warmup_years: must be in [0, years); got {warmup_years}")
+    table = itemsites.reset_index(drop=True)
+    pol = policies.drop_duplicates(["site", "item"])
+    if len(pol) != len(policies):
+        raise ValueError("policies: more than one row for some (site, item)")
+    pol = pol.rename(columns={c: f"policy__{c}" for c in pol.columns if c not in ("site", "item")})
+    merged = table[["site", "item"]].merge(pol, on=["site", "item"], how="left", indicator=True)
+    merged.columns = [c.removeprefix("policy__") for c in merged.columns]
+    lacking = merged[merged["_merge"] != "both"]
+    if len(lacking):
+        r = lacking.iloc[0]
+        raise ValueError(f"policies: no row for item {r['item']!r} at site {r['site']!r} "
+                         f"({len(lacking)} item-site(s) without a policy)")
+
+    sites, index, parent = _site_order(table)
+    items = list(dict.fromkeys(table["item"]))
+    item_index = {it: i for i, it in enumerate(items)}
+    n, s_count = len(items), len(sites)
+    ii = np.array([item_index[v] for v in table["item"]], dtype=np.int64)
+    jj = np.array([index[v] for v in table["site"]], dtype=np.int64)
+
+    def grid(values, fill=0.0):
+        g = np.full((n, s_count), fill, dtype=float)
+        g[ii, jj] = np.asarray(values, dtype=float)
+        return g
+
+    active = np.zeros((n, s_count), dtype=np.bool_)
+    active[ii, jj] = True
+    dmean = grid(table["daily_mean"].fillna(0.0))
+    dsd = grid(table["daily_sd"].fillna(0.0))
+    if demand_model == "auto":
+        model = np.where(dsd * dsd > dmean * (1.0 + 1e-9), DEMAND_COMPOUND, DEMAND_POISSON)
+    elif demand_model == "poisson":
+        model = np.full((n, s_count), DEMAND_POISSON)
+    else:
+        model = np.full((n, s_count), DEMAND_NORMAL_DAILY)
+    rop = grid(merged["reorder_point"], fill=0.0)
+    oq = grid(merged["order_quantity"], fill=1.0)
+    lt_m = grid(table["lead_days"].fillna(0.0))
+    lt_s = grid(table["lead_days_sd"].fillna(0.0))
+
+    dpy = float(settings.days_per_year)
+    horizon = years * dpy
+    warm = warmup_years * dpy
+    tr = [] if trace_items is None else list(trace_items)
+    unknown = [t for t in tr if t not in item_index]
+    if unknown:
+        raise ValueError(f"trace_items: unknown item(s) {unknown}")
+
+    def report(done: int, total: int) -> None:
+        if progress is not None:
+            progress(f"simulated replication {done}/{total} ({n} items, {s_count} sites, "
+                     f"{years:g} years each)")
+
+    sim = simulate_network_arrays(
+        parent, rop, oq, demand_mean=dmean, demand_sd=dsd, demand_model=model, lead_mean=lt_m, lead_sd=lt_s,
+        active=active, horizon_days=horizon, warmup_days=warm, replications=replications, seed=seed,
+        partial_shipments=partial_shipments, orders_cross=orders_cross,
+        trace_items=[item_index[t] for t in tr], trace_step_days=trace_step_days, progress=report,
+    )
+
+    # per-replication annual figures at the rows of the table: (K, rows)
+    def rows(a: np.ndarray) -> np.ndarray:
+        return a[:, ii, jj]
+
+    order_cost = table["order_cost"].fillna(0.0).to_numpy(float)
+    hold = table["holding_cost"].fillna(0.0).to_numpy(float)
+    bcost = table["backorder_cost"].fillna(0.0).to_numpy(float)
+    per_rep = {
+        "fill_rate": rows(sim.fill_rate),
+        "cycle_service": rows(sim.cycle_service),
+        "on_hand": rows(sim.on_hand),
+        "backorders": rows(sim.backorders),
+        "orders_per_year": rows(sim.orders_per_day) * dpy,
+        "store_delay_days": np.where(parent[jj] >= 0, rows(sim.store_delay), 0.0),
+    }
+    per_rep["ordering_cost"] = per_rep["orders_per_year"] * order_cost
+    per_rep["holding_cost"] = per_rep["on_hand"] * hold
+    if settings.backorder_basis == "per_unit":
+        per_rep["backorder_cost"] = rows(sim.units_short_per_day) * dpy * bcost
+    else:
+        per_rep["backorder_cost"] = per_rep["backorders"] * bcost
+    per_rep["total_cost"] = per_rep["ordering_cost"] + per_rep["holding_cost"] + per_rep["backorder_cost"]
+
+    out = pd.DataFrame({"site": table["site"].to_numpy(object), "item": table["item"].to_numpy(object)})
+    out["reorder_point"] = merged["reorder_point"].to_numpy(float)
+    out["order_quantity"] = merged["order_quantity"].to_numpy(float)
+    names = {DEMAND_POISSON: "poisson", DEMAND_COMPOUND: "compound_poisson",
+             DEMAND_NORMAL_DAILY: "normal_daily"}
+    out["demand_model"] = [names[int(m)] for m in model[ii, jj]]
+    out["demand_per_year"] = _mean0(rows(sim.demand_per_day)) * dpy
+    for name in KPI_COLUMNS:
+        out[name] = _mean0(per_rep[name])
+        out[f"{name}_ci"] = confidence_half_width(per_rep[name], axis=0)
+    flags = [[] for _ in range(len(out))]
+    for name, col in PLANNED_COLUMNS.items():
+        if col not in merged.columns:
+            continue
+        planned = pd.to_numeric(merged[col], errors="coerce").to_numpy(float)
+        out[f"planned_{name}"] = planned
+        lo = out[name].to_numpy() - out[f"{name}_ci"].to_numpy()
+        hi = out[name].to_numpy() + out[f"{name}_ci"].to_numpy()
+        outside = (planned < lo - PLANNED_SLACK) | (planned > hi + PLANNED_SLACK)
+        off = np.isfinite(planned) & np.isfinite(lo) & outside
+        for r in np.nonzero(off)[0]:
+            flags[r].append(name)
+    out["outside_interval"] = ["; ".join(f) for f in flags]
+
+    trace_frames = []
+    for row, item in enumerate(tr):
+        for j, site in enumerate(sites):
+            if not active[item_index[item], j]:
+                continue
+            trace_frames.append(pd.DataFrame({
+                "item": item, "site": site, "day": sim.trace_times,
+                "on_hand": sim.trace_on_hand[row, :, j], "backorders": sim.trace_backorders[row, :, j],
+            }))
+    traces = (pd.concat(trace_frames, ignore_index=True) if trace_frames
+              else pd.DataFrame(columns=["item", "site", "day", "on_hand", "backorders"]))
+    info = {
+        "years": years, "warmup_years": warmup_years, "replications": int(replications), "seed": int(seed),
+        "partial_shipments": bool(partial_shipments), "orders_cross": bool(orders_cross),
+        "demand_model": demand_model, "days_per_year": dpy, "items": n, "sites": s_count,
+        "item_sites": len(out), "demand_events": sim.demand_events,
+        "seconds": round(time.perf_counter() - t_start, 3), "capacity_retries": sim.retries,
+        "traced_items": tr,
+    }
+    return SimulationOutcome(table=out, traces=traces, info=info)
+
+
+def _mean0(a: np.ndarray) -> np.ndarray:
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmean(a, axis=0)
+
+
+def simulate_policies(itemsites, policies, settings, *, years: float = 5.0, warmup_years: float = 0.5,
+                      replications: int = 10, seed: int = 0, **options: Any):
+    """Simulate given policies and return the table of :class:`SimulationOutcome` (one row per site, item).
+
+    Parameters
+    ----------
+    itemsites, policies, settings, years, warmup_years, replications, seed
+        As in :func:`run_simulation`.
+    **options
+        Passed on to :func:`run_simulation` (``partial_shipments``, ``orders_cross``, ``demand_model``,
+        ``trace_items``, ``progress``).
+
+    Returns
+    -------
+    DataFrame
+        ``site, item, reorder_point, order_quantity, demand_model, demand_per_year`` then for each KPI in
+        ``fill_rate, cycle_service, on_hand, backorders, orders_per_year, store_delay_days, ordering_cost,
+        holding_cost, backorder_cost, total_cost`` its mean and ``<kpi>_ci`` (95% half-width), then
+        ``planned_<kpi>`` where the policies give it, and ``outside_interval``.
+
+    Examples
+    --------
+    >>> frame = simulate_policies(table, policies, case.settings, years=2, replications=5)  # doctest: +SKIP
+
+    Notes
+    -----
+    See :func:`run_simulation` for the annual figures and :func:`simulate_network_arrays` for the mechanics.
+
+    References
+    ----------
+    Law, A. M., Simulation Modeling and Analysis, 5th ed., 2015.
+    """
+    return run_simulation(itemsites, policies, settings, years=years, warmup_years=warmup_years,
+                          replications=replications, seed=seed, **options).table
+
+
+# ============================================================================================================
+# writing: simulation.csv, traces.csv, summary.json, plots (atomically)
+# ============================================================================================================
+
+
+def _plot_traces(traces, folder: Path) -> list[str]:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    written = []
+    for item, part in traces.groupby("item", sort=False):
+        sites = list(dict.fromkeys(part["site"]))
+        fig, axes = plt.subplots(len(sites), 1, figsize=(9, 1.9 * len(sites) + 0.6), sharex=True,
+                                 squeeze=False)
+        for ax, site in zip(axes[:, 0], sites, strict=True):
+            rows = part[part["site"] == site]
+            ax.step(rows["day"], rows["on_hand"], where="post", color="tab:blue", lw=0.9, label="on hand")
+            ax.step(rows["day"], -rows["backorders"], where="post", color="tab:red", lw=0.9,
+                    label="backorders (below 0)")
+            ax.axhline(0, color="grey", lw=0.5)
+            ax.set_ylabel(str(site), fontsize=8)
+        axes[0, 0].set_title(f"{item}: simulated on hand and backorders per site (units), replication 1")
+        axes[0, 0].legend(fontsize=7, loc="upper right")
+        axes[-1, 0].set_xlabel("day")
+        fig.tight_layout()
+        name = f"trace_{_safe_name(str(item))}.png"
+        fig.savefig(folder / name, dpi=100)
+        plt.close(fig)
+        written.append(name)
+    return written
+
+
+def _safe_name(text: str) -> str:
+    return "".join(c if c.isalnum() or c in "-_." else "_" for c in text)
+
+
+def write_simulation(outcome: SimulationOutcome, out_dir: str | Path, *, case_name: str = "",
+                     case_path: str = "", plots: bool = True) -> list[str]:
+    """Write ``simulation.csv``, ``traces.csv`` (when items were traced), ``summary.json`` and the plots.
+
+    Parameters
+    ----------
+    outcome : SimulationOutcome
+        From :func:`run_simulation`.
+    out_dir : str or Path
+        Target folder; created, or replaced when it holds an earlier rqnet output (never otherwise).
+    case_name, case_path : str
+        Shown in ``summary.json``.
+    plots : bool
+        Also draw ``trace_<item>.png`` for every traced item.
+
+    Returns
+    -------
+    list of str
+        Files written, relative to ``out_dir``.
+
+    Examples
+    --------
+    >>> write_simulation(run_simulation(table, policies, settings), "out/sim")  # doctest: +SKIP
+
+    Notes
+    -----
+    Everything is written into a temporary folder beside the target and renamed into place when complete.
+
+    References
+    ----------
+    None (file layout of this project).
+    """
+    from optimiser.report import TOOL, _check_target, _clean, tool_version
+
+    target = Path(out_dir).resolve()
+    _check_target(target)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    temp = Path(tempfile.mkdtemp(prefix=f".{target.name}.tmp-", dir=target.parent))
+    written: list[str] = []
+    try:
+        outcome.table.to_csv(temp / "simulation.csv", index=False, float_format="%.6g")
+        written.append("simulation.csv")
+        if len(outcome.traces):
+            outcome.traces.to_csv(temp / "traces.csv", index=False, float_format="%.6g")
+            written.append("traces.csv")
+        tab = outcome.table
+        summary = {
+            "tool": TOOL,
+            "version": tool_version(),
+            "command": "simulate",
+            "created": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
+            "case": {"name": case_name, "path": case_path},
+            "run": outcome.info,
+            "network": {
+                "total_cost": float(tab["total_cost"].sum()),
+                "item_sites_outside_interval": int((tab["outside_interval"] != "").sum()),
+            },
+        }
+        (temp / "summary.json").write_text(json.dumps(_clean(summary), indent=2, ensure_ascii=False) + "\n",
+                                           encoding="utf-8")
+        written.append("summary.json")
+        if plots and len(outcome.traces):
+            written += _plot_traces(outcome.traces, temp)
+        os.chmod(temp, 0o755)
+        if target.exists():
+            old = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
+            old.rmdir()
+            target.rename(old)
+            temp.rename(target)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            temp.rename(target)
+    except BaseException:
+        shutil.rmtree(temp, ignore_errors=True)
+        raise
+    return written
+
+
+# ============================================================================================================
+# the `rqnet simulate` subcommand (registered in optimiser/cli.py)
+# ============================================================================================================
+
+COMMAND_HELP = "simulate reorder points and order quantities on the network and compare with the plan"
+COMMAND_DESCRIPTION = (
+    "Run the policies in --policies (a policies.csv written by 'rqnet plan', or any CSV with site, item, "
+    "reorder_point, order_quantity) through a simulation of the whole network: random customer demand at "
+    "every site, random lead times, stores ordering from the warehouse and waiting when it is out of stock, "
+    "backorders filled first come, first served. Each of --replications independent runs covers --years "
+    "years after a warm-up. simulation.csv gives per site and item the simulated fill rate, cycle service, "
+    "stock on hand, backorders, orders per year, wait at the warehouse and annual costs, each with the "
+    "half-width of its 95% confidence interval, the planned figures beside them, and outside_interval naming "
+    "the figures the plan gets wrong by more than the simulation's uncertainty. Same --seed, same results."
+)
+
+
+def add_arguments(parser) -> None:
+    """Arguments of ``rqnet simulate``."""
+    parser.add_argument("case", metavar="CASE", type=Path, help="the case folder")
+    parser.add_argument("--policies", metavar="FILE", type=Path, required=True,
+                        help="CSV with site, item, reorder_point, order_quantity for every stocked item-site")
+    parser.add_argument("--out", metavar="DIR", type=Path, required=True,
+                        help="folder for the results; created, or replaced if it holds earlier rqnet results")
+    parser.add_argument("--years", metavar="Y", type=float, default=5.0,
+                        help="simulated years per replication after the warm-up (default 5)")
+    parser.add_argument("--warmup-years", metavar="W", type=float, default=0.5,
+                        help="years simulated first and discarded (default 0.5)")
+    parser.add_argument("--replications", metavar="K", type=int, default=10,
+                        help="independent replications (default 10; at least 2 for intervals)")
+    parser.add_argument("--seed", metavar="S", type=int, default=1, help="random seed (default 1)")
+    parser.add_argument("--whole-orders", action="store_true",
+                        help="the warehouse ships a store order only when it can send all of it (default: "
+                        "it sends what it has and the rest later)")
+    parser.add_argument("--orders-cross", action="store_true",
+                        help="let a later shipment overtake an earlier one (default: arrivals keep order)")
+    parser.add_argument("--demand", choices=["auto", "poisson", "normal-daily"], default="auto",
+                        help="customer demand model: auto = Poisson, or compound Poisson where demand varies "
+                        "more than Poisson (default); normal-daily = normal per day rounded to units")
+    parser.add_argument("--trace", metavar="ITEM", action="append", default=None,
+                        help="plot day-by-day stock of this item at every site (repeatable; default: the "
+                        "item with the largest demand)")
+    parser.add_argument("--no-plots", action="store_true", help="skip the PNG charts")
+
+
+def run(args) -> int:
+    """Run ``rqnet simulate``; returns the exit code."""
+    import pandas as pd
+
+    from optimiser.case import load_case, load_policies_for_case
+    from optimiser.cli import EXIT_BAD_INPUT, EXIT_OK, progress_printer
+    from optimiser.itemsites import build_itemsites
+
+    say = progress_printer(args)
+    say(f"reading case {args.case}")
+    case = load_case(args.case)
+    say(f"reading policies {args.policies}")
+    given = load_policies_for_case(case, args.policies)
+    extra = pd.read_csv(args.policies, dtype={"site": str, "item": str}, keep_default_na=False,
+                        na_values=[""])
+    extra.columns = [str(c).strip() for c in extra.columns]
+    planned = [c for c in PLANNED_COLUMNS.values() if c in extra.columns]
+    if planned:
+        extra = extra[["site", "item", *planned]].copy()
+        extra["site"] = extra["site"].str.strip()
+        extra["item"] = extra["item"].str.strip()
+        given = given.merge(extra.drop_duplicates(["site", "item"]), on=["site", "item"], how="left")
+    itemsites = build_itemsites(case)
+    trace = args.trace
+    if trace is None and len(itemsites):
+        trace = [str(itemsites.groupby("item")["annual_demand"].max().idxmax())]
+    try:
+        outcome = run_simulation(
+            itemsites, given, case.settings, years=args.years, warmup_years=args.warmup_years,
+            replications=args.replications, seed=args.seed, partial_shipments=not args.whole_orders,
+            orders_cross=args.orders_cross, demand_model=args.demand.replace("-", "_"), trace_items=trace,
+            progress=say,
+        )
+    except ValueError as exc:
+        print(f"rqnet: cannot simulate: {exc}", file=sys.stderr)
+        print("rqnet: nothing was written", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    say(f"writing results to {args.out}")
+    write_simulation(outcome, args.out, case_name=case.settings.name, case_path=str(args.case),
+                     plots=not args.no_plots)
+    tab = outcome.table
+    cur = case.settings.currency
+    info = outcome.info
+    print(f"simulate: {info['item_sites']} item-sites at {info['sites']} site(s), {info['replications']} x "
+          f"{info['years']:g} years; simulated total cost {tab['total_cost'].sum():,.0f} {cur} a year")
+    if "planned_total_cost" in tab:
+        print(f"planned total cost {tab['planned_total_cost'].sum():,.0f} {cur} a year")
+    off = int((tab["outside_interval"] != "").sum())
+    print(f"{off} item-site(s) with a planned figure outside the simulation's 95% interval")
+    print(f"results in {args.out}")
+    say("done")
+    return EXIT_OK
