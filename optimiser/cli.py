@@ -288,6 +288,7 @@ COMMANDS: list[Command | Callable[[], Command]] = [
     PLAN,
     CHECK,
     EVALUATE,
+    module_command("simulate", "optimiser.simulate"),
 ]
 
 
