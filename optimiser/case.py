@@ -112,6 +112,8 @@ class Case:
     policies: pd.DataFrame | None
     warnings: list[str] = field(default_factory=list)
     demand_source: str = "demand.csv"
+    #: spreadsheet row of each table row, per file name (for messages about rows found after loading)
+    rows: dict[str, list[int]] = field(default_factory=dict)
 
 
 # --------------------------------------------------------------------------------------------- columns
@@ -165,8 +167,8 @@ ITEMS_COLUMNS = [
     _Col("supplier", "id"),
     _num("unit_cost"),
     _num("holding_cost", required=False),
-    _num("backorder_cost", required=False),
-    _num("pack_size", required=False, default=1.0, strict=True),
+    _num("backorder_cost", required=False, strict=True),
+    _num("pack_size", required=False, default=1.0, strict=True, integer=True),
     _num("volume", required=False),
     _num("weight", required=False),
     _Col("distribution", "choice", required=False, default="", choices=DISTRIBUTIONS),
@@ -187,9 +189,9 @@ STOCKING_COLUMNS = [
     _Col("site", "id"),
     _Col("item", "id"),
     _num("order_quantity", required=False, strict=True),
-    _num("pack_size", required=False, strict=True),
+    _num("pack_size", required=False, strict=True, integer=True),
     _num("target", required=False, strict=True, below_one=True),
-    _num("backorder_cost", required=False),
+    _num("backorder_cost", required=False, strict=True),
 ]
 POLICIES_COLUMNS = [
     _Col("site", "id"),
@@ -726,7 +728,11 @@ def load_case(path: str | Path) -> Case:
             return None
         return frame.drop(columns="rownum").reset_index(drop=True)
 
+    tables = {"sites.csv": sites, "suppliers.csv": suppliers, "items.csv": items, "stocking.csv": stocking,
+              "policies.csv": policies}
+    rows = {name: [int(r) for r in frame["rownum"]] for name, frame in tables.items() if frame is not None}
     return Case(
+        rows=rows,
         path=folder,
         settings=settings,
         sites=clean(sites),

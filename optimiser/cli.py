@@ -10,8 +10,9 @@ where the module defines ``COMMAND_HELP`` (one line), ``COMMAND_DESCRIPTION`` (a
 ``add_arguments(parser)`` and ``run(args) -> int``. Shared helpers for such modules: :func:`progress_printer`
 and the ``--quiet`` flag every subcommand gets.
 
-Exit codes: 0 done; 2 the case or the command line is wrong (message on stderr, nothing written); 3 the case
-is valid but could not be planned (infeasible or a numerical failure).
+Exit codes: 0 done; 1 an unexpected error (a bug; traceback on stderr, nothing written); 2 the case or the
+command line is wrong (message on stderr, nothing written); 3 the case is valid but could not be planned
+(infeasible or a numerical failure).
 """
 
 from __future__ import annotations
@@ -20,6 +21,7 @@ import argparse
 import importlib
 import sys
 import time
+import traceback
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from importlib import metadata
@@ -32,6 +34,7 @@ __all__ = ["Command", "COMMANDS", "module_command", "main", "progress_printer"]
 EXIT_OK = 0
 EXIT_BAD_INPUT = 2
 EXIT_CANNOT_PLAN = 3
+EXIT_BUG = 1
 
 
 @dataclass(frozen=True)
@@ -334,6 +337,13 @@ def main(argv: Sequence[str] | None = None) -> int:
         print(f"rqnet: could not plan: {exc}", file=sys.stderr)
         print("rqnet: nothing was written", file=sys.stderr)
         return EXIT_CANNOT_PLAN
+    except Exception:  # an unexpected failure is a bug: show where, keep the outputs untouched
+        traceback.print_exc()
+        print(
+            "rqnet: unexpected error (please report it with the lines above); nothing was written",
+            file=sys.stderr,
+        )
+        return EXIT_BUG
 
 
 if __name__ == "__main__":  # pragma: no cover

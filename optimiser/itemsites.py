@@ -12,6 +12,7 @@ import pandas as pd
 
 from models import demand as md
 from optimiser.case import Case, ancestors, stocked_pairs
+from optimiser.errors import CaseError
 
 __all__ = [
     "build_itemsites",
@@ -129,7 +130,8 @@ def build_itemsites(case: Case) -> pd.DataFrame:
         stock = case.stocking.rename(
             columns={c: f"stock_{c}" for c in ("order_quantity", "pack_size", "target", "backorder_cost")}
         )
-        frame = frame.merge(stock, on=["site", "item"], how="left")
+        rows = case.rows.get("stocking.csv") or [0] * len(stock)
+        frame = frame.merge(stock.assign(stock_row=rows), on=["site", "item"], how="left")
     else:
         for c in ("order_quantity", "pack_size", "target", "backorder_cost"):
             frame[f"stock_{c}"] = np.nan
@@ -183,7 +185,19 @@ def build_itemsites(case: Case) -> pd.DataFrame:
     else:
         default = np.nan if settings.target is None else settings.target
         out["target"] = frame["stock_target"].fillna(default).to_numpy(dtype=float)
-    out["order_quantity"] = frame["stock_order_quantity"].to_numpy(dtype=float)
+    fixed = frame["stock_order_quantity"].to_numpy(dtype=float)
+    fractional = (codes != md.NORMAL) & np.isfinite(fixed) & (fixed != np.round(fixed))
+    if fractional.any():
+        first = int(np.flatnonzero(fractional)[0])
+        raise CaseError(
+            "stocking.csv",
+            f"item {frame['item'].iloc[first]!r} at site {frame['site'].iloc[first]!r} is planned with count "
+            "demand (Poisson or negative binomial): a fixed order quantity must be a whole number",
+            row=int(frame["stock_row"].iloc[first]) or None,
+            column="order_quantity",
+            value=fixed[first],
+        )
+    out["order_quantity"] = fixed
     out["pack_size"] = frame["stock_pack_size"].fillna(frame["item_pack"]).fillna(1.0).to_numpy(dtype=float)
     out["unit_cost"] = frame["unit_cost"].to_numpy(dtype=float)
     out["volume"] = frame["volume"].to_numpy(dtype=float)

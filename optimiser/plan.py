@@ -182,6 +182,12 @@ def _check_converged(policy: ss.SitePolicy, itemsites: pd.DataFrame, warnings: l
         raise SolverError(f"non-finite cost for {int((~np.isfinite(total)).sum())} item-site(s): {shown}")
 
 
+def _pack_sizes(itemsites: pd.DataFrame) -> np.ndarray:
+    """Pack sizes for the models: NaN (no rounding) where the pack is a single unit."""
+    pack = itemsites["pack_size"].to_numpy(dtype=float)
+    return np.where(pack == 1.0, np.nan, pack)
+
+
 def _plan_single_site(itemsites: pd.DataFrame, settings: Settings, warnings: list[str]) -> pd.DataFrame:
     arrays = _single_site_inputs(itemsites)
     mode = settings.mode
@@ -197,7 +203,7 @@ def _plan_single_site(itemsites: pd.DataFrame, settings: Settings, warnings: lis
         backorder_basis=settings.backorder_basis,
         target=itemsites["target"].to_numpy(dtype=float) if mode != "cost" else None,
         order_quantity=itemsites["order_quantity"].to_numpy(dtype=float),
-        pack_size=itemsites["pack_size"].to_numpy(dtype=float),
+        pack_size=_pack_sizes(itemsites),
     )
     _check_converged(policy, itemsites, warnings)
     return _policy_frame(itemsites, policy, arrays["lead"], arrays["ltd_mean"], arrays["ltd_sd"])
