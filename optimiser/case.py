@@ -197,7 +197,7 @@ POLICIES_COLUMNS = [
     _Col("site", "id"),
     _Col("item", "id"),
     _num("reorder_point", signed=True, minimum=None),
-    _num("order_quantity", strict=True),
+    _num("order_quantity"),  # 0 only where there is no demand (checked against the item-site table)
 ]
 
 
@@ -722,14 +722,20 @@ def load_case(path: str | Path) -> Case:
     if (folder / "policies.csv").is_file():
         policies = read_policies(folder / "policies.csv", "policies.csv", sites, items, warnings)
         _check_policies_stocked(policies, pairs, "policies.csv", require_all=False, warnings=warnings)
+        _check_policies_quantity(policies, sites, demand, "policies.csv")
 
     def clean(frame: pd.DataFrame | None) -> pd.DataFrame | None:
         if frame is None:
             return None
         return frame.drop(columns="rownum").reset_index(drop=True)
 
-    tables = {"sites.csv": sites, "suppliers.csv": suppliers, "items.csv": items, "stocking.csv": stocking,
-              "policies.csv": policies}
+    tables = {
+        "sites.csv": sites,
+        "suppliers.csv": suppliers,
+        "items.csv": items,
+        "stocking.csv": stocking,
+        "policies.csv": policies,
+    }
     rows = {name: [int(r) for r in frame["rownum"]] for name, frame in tables.items() if frame is not None}
     return Case(
         rows=rows,
@@ -826,6 +832,30 @@ def _check_service(
                 )
 
 
+def _check_policies_quantity(
+    policies: pd.DataFrame, sites: pd.DataFrame, demand: pd.DataFrame, label: str
+) -> None:
+    """An order quantity of 0 is accepted only where no demand passes through the item-site."""
+    zero = policies[policies["order_quantity"] <= 0]
+    if zero.empty:
+        return
+    upstream = dict(zip(sites["site"], sites["upstream"], strict=True))
+    busy: set[tuple[str, str]] = set()
+    for site, item, mean in zip(demand["site"], demand["item"], demand["daily_mean"], strict=True):
+        if mean > 0:
+            busy.add((site, item))
+            busy.update((above, item) for above in ancestors(upstream, site))
+    for rec in zero.itertuples(index=False):
+        if (rec.site, rec.item) in busy:
+            raise CaseError(
+                label,
+                "must be greater than 0 where there is demand",
+                row=int(rec.rownum),
+                column="order_quantity",
+                value=rec.order_quantity,
+            )
+
+
 def _check_policies_stocked(
     policies: pd.DataFrame, pairs: pd.DataFrame, label: str, *, require_all: bool, warnings: list[str]
 ) -> None:
@@ -865,4 +895,8 @@ def load_policies_for_case(case: Case, path: str | Path) -> pd.DataFrame:
     frame = read_policies(file, label, case.sites, case.items)
     pairs = stocked_pairs(case.sites, case.demand, case.stocking)
     _check_policies_stocked(frame, pairs, label, require_all=True, warnings=[])
-    return frame.drop(columns="rownum").reset_index(drop=True)
+    _check_policies_quantity(frame, case.sites, case.demand, label)
+    rows = [int(r) for r in frame["rownum"]]
+    out = frame.drop(columns="rownum").reset_index(drop=True)
+    out.attrs["rows"] = rows
+    return out

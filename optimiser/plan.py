@@ -234,25 +234,45 @@ def _evaluate_single_site(
 
 
 def _align_policies(itemsites: pd.DataFrame, given: pd.DataFrame, label: str) -> pd.DataFrame:
-    """Given policies in the row order of ``itemsites`` (rows missing in ``given`` dropped from both)."""
-    merged = (
-        itemsites[["site", "item", "distribution"]]
-        .reset_index()
-        .merge(given[["site", "item", "reorder_point", "order_quantity"]], on=["site", "item"], how="inner")
+    """Given policies in the row order of ``itemsites`` (item-sites missing in ``given`` left out).
+
+    Checks what needs the item-site table: whole numbers for count demand, and an order quantity above 0
+    wherever there is demand (0 is accepted only for an item-site without demand). Rows named in errors come
+    from ``given.attrs["rows"]`` (spreadsheet rows) when the reader kept them.
+    """
+    rows = given.attrs.get("rows")
+    keyed = given[["site", "item", "reorder_point", "order_quantity"]].assign(
+        given_row=rows if rows is not None and len(rows) == len(given) else 0
     )
+    merged = (
+        itemsites[["site", "item", "distribution", "annual_demand"]]
+        .reset_index()
+        .merge(keyed, on=["site", "item"], how="inner")
+    )
+
+    def fail(mask: np.ndarray, column: str, rule: str) -> None:
+        rec = merged[mask].iloc[0]
+        raise CaseError(
+            label,
+            f"item {rec['item']!r} at site {rec['site']!r}: {rule}",
+            row=int(rec["given_row"]) or None,
+            column=column,
+            value=rec[column],
+        )
+
     counts = merged["distribution"].to_numpy() != md.NORMAL
     for column in ("reorder_point", "order_quantity"):
         values = merged[column].to_numpy(dtype=float)
         bad = counts & (values != np.round(values))
         if bad.any():
-            rec = merged[bad].iloc[0]
-            raise CaseError(
-                label,
-                f"item {rec['item']!r} at site {rec['site']!r} is planned with count demand "
-                "(Poisson or negative binomial): give a whole number",
-                column=column,
-                value=rec[column],
+            fail(
+                bad,
+                column,
+                "planned with count demand (Poisson or negative binomial), so give a whole number",
             )
+    empty = (merged["order_quantity"].to_numpy() <= 0) & (merged["annual_demand"].to_numpy() > 0)
+    if empty.any():
+        fail(empty, "order_quantity", "must be greater than 0 where there is demand")
     return merged.sort_values("index")
 
 
@@ -437,7 +457,9 @@ def plan_case(case: Case, *, progress: Callable[[str], None] | None = None) -> P
     current = comparison = None
     if case.policies is not None:
         say("evaluating today's policies")
-        current, _ = _evaluate(itemsites, case.policies, case.settings, "policies.csv", warnings)
+        today = case.policies.copy()
+        today.attrs["rows"] = case.rows.get("policies.csv")
+        current, _ = _evaluate(itemsites, today, case.settings, "policies.csv", warnings)
         comparison = _comparison(policies, current, itemsites)
     warnings = list(dict.fromkeys(warnings))
     return PlanResult(
