@@ -118,18 +118,18 @@ def _run_plan(args: argparse.Namespace) -> int:
 
 
 def _print_totals(result, out: Path) -> None:  # noqa: ANN001 - PlanResult, imported lazily
-    cur = result.settings.currency
+    cur = f" {result.settings.currency}" if result.settings.currency else ""
     net = result.network
     print(
         f"{result.command}: {net['item_sites']} item-sites at {net['sites']} site(s); "
-        f"total cost {net['total_cost']:,.0f} {cur} a year, customer fill rate "
+        f"total cost {net['total_cost']:,.0f}{cur} a year, customer fill rate "
         f"{100 * net['customer_fill_rate']:.1f} %".replace("nan %", "n/a")
     )
     if result.comparison is not None:
         row = result.comparison.set_index("site").loc["(network)"]
         print(
-            f"today's policies on the same item-sites: {row['current_total_cost']:,.0f} {cur} a year; "
-            f"recommended {row['recommended_total_cost']:,.0f} {cur}"
+            f"today's policies on the same item-sites: {row['current_total_cost']:,.0f}{cur} a year; "
+            f"recommended {row['recommended_total_cost']:,.0f}{cur}"
         )
     for warning in result.warnings:
         print(f"warning: {warning}")

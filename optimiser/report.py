@@ -8,7 +8,7 @@ Layout of the output folder::
     summary.json              totals per site and for the network, settings, tool version, warnings
     comparison.csv            today's against the recommended policies (only when the case gives today's)
     cost_by_site.png          annual cost per site by component
-    safety_stock_vs_service.png  safety stock value against fill rate per item-site
+    safety_stock_vs_service.png  safety stock in days of demand against fill rate per item-site
 
 Everything is written into a temporary folder beside the target and renamed into place when complete; on an
 error nothing is left behind. An existing target folder is replaced only when it is empty or was written by
@@ -242,16 +242,14 @@ def _plots(result: PlanResult, folder: Path) -> list[str]:
     plt.close(fig)
     written.append("cost_by_site.png")
 
-    joined = result.policies.merge(
-        result.itemsites[["site", "item", "unit_cost", "annual_demand"]], on=["site", "item"]
-    )
+    joined = result.policies.merge(result.itemsites[["site", "item", "annual_demand"]], on=["site", "item"])
     joined = joined[joined["annual_demand"] > 0]
-    fig, ax = plt.subplots(figsize=(6, 4))
+    daily = joined["annual_demand"] / result.settings.days_per_year
+    joined = joined.assign(cover_days=joined["safety_stock"] / daily)
+    fig, ax = plt.subplots(figsize=(6.5, 4))
     for site, part in joined.groupby("site", sort=False):
-        ax.scatter(
-            part["safety_stock"] * part["unit_cost"], part["fill_rate"], s=14, label=str(site), alpha=0.7
-        )
-    ax.set_xlabel(f"safety stock value ({result.settings.currency})".replace(" ()", ""))
+        ax.scatter(part["cover_days"], part["fill_rate"], s=14, label=str(site), alpha=0.7)
+    ax.set_xlabel("safety stock, days of demand")
     ax.set_ylabel("fill rate")
     ax.set_title("Safety stock against service, per item-site")
     if joined["site"].nunique() <= 10:
