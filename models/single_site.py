@@ -60,6 +60,7 @@ NOTE_FIXED_Q = 16
 NOTE_PACK_ROUNDED = 32
 NOTE_POISSON_FALLBACK = 64
 NOTE_SEARCH_LIMIT = 128
+NOTE_ONE_FOR_ONE = 256
 
 _NOTE_TEXT = {
     NOTE_ZERO_DEMAND: "no demand: no stock, no orders",
@@ -71,6 +72,7 @@ _NOTE_TEXT = {
     NOTE_PACK_ROUNDED: "order quantity rounded to a multiple of the pack size",
     NOTE_POISSON_FALLBACK: "negative binomial asked for but variance <= mean: Poisson used",
     NOTE_SEARCH_LIMIT: "order quantity at the edge of its search range (cost still falling)",
+    NOTE_ONE_FOR_ONE: "no order cost: one unit (or one pack) per order",
 }
 
 # ------------------------------------------------------------------------------------- tolerances, limits
@@ -668,7 +670,8 @@ def _check(name, a, rule, ok):
 
 
 def _prepare(annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost, distribution, backorder_cost,
-             backorder_basis):
+             backorder_basis, extra=None):
+    """Check and broadcast the common inputs (and the ``extra`` named arrays) to one (n,) shape."""
     if backorder_basis not in _BASES:
         raise ValueError(f"backorder_basis must be one of {_BASES}, got {backorder_basis!r}")
     D = _arr("annual_demand", annual_demand)
@@ -678,10 +681,13 @@ def _prepare(annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost, distribu
     h = _arr("holding_cost", holding_cost)
     dist = np.atleast_1d(np.asarray(distribution))
     b = _arr("backorder_cost", np.nan if backorder_cost is None else backorder_cost)
+    extra = extra or {}
+    more = [_arr(name, value) for name, value in extra.items()]
     try:
-        D, mu, sd, A, h, dist, b = np.broadcast_arrays(D, mu, sd, A, h, dist, b)
+        D, mu, sd, A, h, dist, b, *more = np.broadcast_arrays(D, mu, sd, A, h, dist, b, *more)
     except ValueError as exc:
         raise ValueError(f"inputs must broadcast to one shape (n,): {exc}") from None
+    extra_out = {name: np.array(v, dtype=float) for name, v in zip(extra, more, strict=True)}
     D, mu, sd, A, h, b = (np.array(x, dtype=float) for x in (D, mu, sd, A, h, b))
     dist = np.array(dist).astype(np.int8)
     _check("annual_demand", D, "finite and >= 0", np.isfinite(D) & (D >= 0))
@@ -692,7 +698,7 @@ def _prepare(annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost, distribu
     _check("distribution", dist, "0 (normal), 1 (poisson) or 2 (negbin)",
            (dist == NORMAL) | (dist == POISSON) | (dist == NEGBIN))
     _check("backorder_cost", b, "NaN (none) or finite and >= 0", np.isnan(b) | (np.isfinite(b) & (b >= 0)))
-    return D, mu, sd, A, h, dist, b
+    return D, mu, sd, A, h, dist, b, extra_out
 
 
 # ==================================================================================== evaluation core
@@ -783,10 +789,11 @@ def evaluate_policy(annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost, r
     >>> round(float(pol.fill_rate[0]), 6)
     0.421259
     """
-    D, mu, sd, A, h, dist, b = _prepare(annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost,
-                                        distribution, backorder_cost, backorder_basis)
-    R, Q = np.broadcast_arrays(_arr("reorder_point", reorder_point), _arr("order_quantity", order_quantity))
-    R, Q = np.broadcast_to(R, D.shape).astype(float), np.broadcast_to(Q, D.shape).astype(float)
+    D, mu, sd, A, h, dist, b, ex = _prepare(annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost,
+                                            distribution, backorder_cost, backorder_basis,
+                                            {"reorder_point": reorder_point,
+                                             "order_quantity": order_quantity})
+    R, Q = ex["reorder_point"], ex["order_quantity"]
     _check("reorder_point", R, "finite", np.isfinite(R))
     _check("order_quantity", Q, "finite, and > 0 where annual_demand > 0",
            np.isfinite(Q) & ((Q > 0) | (D <= 0)) & (Q >= 0))
@@ -873,8 +880,11 @@ def optimise_policy(annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost, *
         raise ValueError(f"mode must be one of {_MODES}, got {mode!r}")
     if quantity_rule not in _RULES:
         raise ValueError(f"quantity_rule must be one of {_RULES}, got {quantity_rule!r}")
-    D, mu, sd, A, h, dist, b = _prepare(annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost,
-                                        distribution, backorder_cost, backorder_basis)
+    extra = {"target": np.nan if target is None else target,
+             "order_quantity": np.nan if order_quantity is None else order_quantity,
+             "pack_size": np.nan if pack_size is None else pack_size}
+    D, mu, sd, A, h, dist, b, ex = _prepare(annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost,
+                                            distribution, backorder_cost, backorder_basis, extra)
     n = D.shape[0]
     live = D > 0
     if mode == "cost":
@@ -884,13 +894,11 @@ def optimise_policy(annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost, *
     else:
         if target is None:
             raise ValueError(f"target is required in mode {mode!r}")
-        t = np.broadcast_to(_arr("target", target), (n,)).astype(float)
+        t = ex["target"]
         _check("target", t, "strictly between 0 and 1", (t > 0) & (t < 1))
-    fq = np.full(n, np.nan) if order_quantity is None else np.broadcast_to(
-        _arr("order_quantity", order_quantity), (n,)).astype(float)
+    fq = ex["order_quantity"]
     _check("order_quantity", fq, "NaN (free) or finite and > 0", np.isnan(fq) | (np.isfinite(fq) & (fq > 0)))
-    pk = np.full(n, np.nan) if pack_size is None else np.broadcast_to(
-        _arr("pack_size", pack_size), (n,)).astype(float)
+    pk = ex["pack_size"]
     _check("pack_size", pk, "NaN (none) or finite and > 0", np.isnan(pk) | (np.isfinite(pk) & (pk > 0)))
     discrete = dist != NORMAL
     _check("pack_size", pk, "a whole number for count distributions",
@@ -901,8 +909,12 @@ def optimise_policy(annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost, *
     Q = np.zeros(n)
     it = np.zeros(n, dtype=np.int64)
     conv = np.ones(n, dtype=bool)
+    note |= np.where(live & np.isfinite(fq), NOTE_FIXED_Q, 0)
+    # no order cost and a free Q: one unit (or one pack) per order, the base-stock limit
+    single = live & np.isnan(fq) & (A <= 0)
+    fq = np.where(single, np.where(np.isfinite(pk), pk, 1.0), fq)
+    note |= np.where(single, NOTE_ONE_FOR_ONE, 0)
     fixed = live & np.isfinite(fq)
-    note |= np.where(fixed, NOTE_FIXED_Q, 0)
     bx = np.where(np.isnan(b), 0.0, b)
 
     # ---------------------------------------------------------------------- free Q, joint optimisation
