@@ -55,20 +55,13 @@ ST_CUSTOMER_UNITS = 11  # customer demand units at the site
 ST_MEASURED_DAYS = 12  # length of the measured period (same for every site)
 N_STATS = 13
 
-# integer state per site
-_OH = 0  # on hand
-_BO = 1  # backordered units (queue)
-_IP = 2  # inventory position
-_SHORT = 3  # a demand was short since the last receipt
-_N_STATE = 4
-
 # task status
 STATUS_OK = 0
 STATUS_HEAP_FULL = 1
 STATUS_QUEUE_FULL = 2
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _logseries(theta: float, log1m_theta: float) -> int:
     """Logarithmic variate on 1, 2, ... (Kemp's 1981 algorithm, as used by numpy)."""
     while True:
@@ -89,7 +82,7 @@ def _logseries(theta: float, log1m_theta: float) -> int:
         return 2
 
 
-@njit(cache=True)
+@njit(cache=True, inline="always")
 def _lead_time(mean: float, sd: float) -> float:
     if sd <= 0.0 or mean <= 0.0:
         return mean
@@ -98,208 +91,47 @@ def _lead_time(mean: float, sd: float) -> float:
 
 
 @njit(cache=True)
-def _touch(s, t, st, last, stats):
-    dt = t - last[s]
-    if dt > 0.0:
-        stats[s, ST_AREA_ON_HAND] += st[s, _OH] * dt
-        stats[s, ST_AREA_BACKORDERS] += st[s, _BO] * dt
-    last[s] = t
-
-
-@njit(cache=True)
-def _heap_push(ht, hsq, cnt, t, s, q):
-    """Push arrival (t, site, qty); False when the heap is full."""
-    n = cnt[0]
-    if n >= ht.shape[0]:
-        return False
-    i = n
-    while i > 0:
-        p = (i - 1) >> 1
-        if ht[p] <= t:
-            break
-        ht[i] = ht[p]
-        hsq[i, 0] = hsq[p, 0]
-        hsq[i, 1] = hsq[p, 1]
-        i = p
-    ht[i] = t
-    hsq[i, 0] = s
-    hsq[i, 1] = q
-    cnt[0] = n + 1
-    return True
-
-
-@njit(cache=True)
-def _heap_pop(ht, hsq, cnt):
-    """Remove the root; the caller has read it."""
-    n = cnt[0] - 1
-    cnt[0] = n
-    if n == 0:
-        return
-    t = ht[n]
-    s = hsq[n, 0]
-    q = hsq[n, 1]
-    i = 0
-    while True:
-        c = 2 * i + 1
-        if c >= n:
-            break
-        if c + 1 < n and ht[c + 1] < ht[c]:
-            c += 1
-        if ht[c] >= t:
-            break
-        ht[i] = ht[c]
-        hsq[i, 0] = hsq[c, 0]
-        hsq[i, 1] = hsq[c, 1]
-        i = c
-    ht[i] = t
-    hsq[i, 0] = s
-    hsq[i, 1] = q
-
-
-@njit(cache=True)
-def _ship(c, x, wait, t, measuring, lt_mean, lt_sd, crossing, last_arr, ht, hsq, cnt, stats):
-    """Send x units to child site c (c < 0: a customer, nothing to send)."""
-    if c < 0:
-        return True
-    arr = t + _lead_time(lt_mean[c], lt_sd[c])
-    if not crossing:
-        if arr < last_arr[c]:
-            arr = last_arr[c]
-        last_arr[c] = arr
-    if measuring:
-        stats[c, ST_WAIT_UNIT_DAYS] += x * wait
-        stats[c, ST_SHIPPED_UNITS] += x
-    return _heap_push(ht, hsq, cnt, arr, c, x)
-
-
-@njit(cache=True)
-def _demand_chain(s, child, q, t, measuring, parent, rop, oq, review, lt_mean, lt_sd, partial, crossing,
-                  st, last, stats, last_arr, ht, hsq, cnt, qc, qq, qt, qhl):
-    """Site s receives a demand of q units from `child` (-1 = customers); orders travel up the tree.
-
-    Returns a status code (STATUS_OK or a capacity overflow).
-    """
-    while True:
-        _touch(s, t, st, last, stats)
-        if measuring:
-            stats[s, ST_DEMAND_UNITS] += q
-        st[s, _IP] -= q
-        qlen = qhl[s, 1]
-        if qlen == 0 and st[s, _OH] >= q:
-            st[s, _OH] -= q
-            if measuring:
-                stats[s, ST_IMMEDIATE_UNITS] += q
-            if not _ship(child, q, 0.0, t, measuring, lt_mean, lt_sd, crossing, last_arr, ht, hsq, cnt,
-                         stats):
-                return STATUS_HEAP_FULL
-        else:
-            x = 0
-            if qlen == 0 and (partial or child < 0):
-                x = st[s, _OH]
-            if x > 0:
-                st[s, _OH] -= x
-                if measuring:
-                    stats[s, ST_IMMEDIATE_UNITS] += x
-                if not _ship(child, x, 0.0, t, measuring, lt_mean, lt_sd, crossing, last_arr, ht, hsq, cnt,
-                             stats):
-                    return STATUS_HEAP_FULL
-            rem = q - x
-            st[s, _BO] += rem
-            st[s, _SHORT] = 1
-            cap = qc.shape[1]
-            head = qhl[s, 0]
-            if child < 0 and qlen > 0:
-                tail = (head + qlen - 1) % cap
-                if qc[s, tail] < 0:  # merge consecutive customer backorders
-                    qq[s, tail] += rem
-                    rem = 0
-            if rem > 0:
-                if qlen >= cap:
-                    return STATUS_QUEUE_FULL
-                pos = (head + qlen) % cap
-                qc[s, pos] = child
-                qq[s, pos] = rem
-                qt[s, pos] = t
-                qhl[s, 1] = qlen + 1
-        # replenishment decision
-        if review[s] > 0.0:
-            return STATUS_OK
-        ip = st[s, _IP]
-        if ip > rop[s]:
-            return STATUS_OK
-        n = (rop[s] - ip) // oq[s] + 1
-        qty = n * oq[s]
-        st[s, _IP] += qty
-        if measuring:
-            stats[s, ST_ORDERS] += 1
-            stats[s, ST_ORDER_UNITS] += qty
-        p = parent[s]
-        if p < 0:
-            arr = t + _lead_time(lt_mean[s], lt_sd[s])
-            if not crossing:
-                if arr < last_arr[s]:
-                    arr = last_arr[s]
-                last_arr[s] = arr
-            if not _heap_push(ht, hsq, cnt, arr, s, qty):
-                return STATUS_HEAP_FULL
-            return STATUS_OK
-        child = s
-        s = p
-        q = qty
-
-
-@njit(cache=True)
-def _receive(s, q, t, measuring, partial, lt_mean, lt_sd, crossing, st, last, stats, last_arr, ht, hsq, cnt,
-             qc, qq, qt, qhl):
-    """q units arrive at site s; serve its queue first come, first served."""
-    _touch(s, t, st, last, stats)
-    st[s, _OH] += q
-    if measuring:
-        stats[s, ST_CYCLES] += 1
-        stats[s, ST_SHORT_CYCLES] += st[s, _SHORT]
-    st[s, _SHORT] = 0
-    cap = qc.shape[1]
-    while qhl[s, 1] > 0 and st[s, _OH] > 0:
-        h = qhl[s, 0]
-        c = qc[s, h]
-        rq = qq[s, h]
-        oh = st[s, _OH]
-        if c < 0 or partial:
-            x = rq if rq < oh else oh
-        elif oh >= rq:
-            x = rq
-        else:
-            break
-        st[s, _OH] -= x
-        st[s, _BO] -= x
-        wait = t - qt[s, h]
-        if not _ship(c, x, wait, t, measuring, lt_mean, lt_sd, crossing, last_arr, ht, hsq, cnt, stats):
-            return STATUS_HEAP_FULL
-        if x == rq:
-            qhl[s, 0] = (h + 1) % cap
-            qhl[s, 1] -= 1
-        else:
-            qq[s, h] = rq - x
-    return STATUS_OK
-
-
-@njit(cache=True)
 def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, dmean, dsd, lt_mean, lt_sd,
               partial, crossing, horizon, warmup, seed, heap_cap, queue_cap, stats, trace_oh, trace_bo,
               trace_step):
-    """Simulate one item once; fills ``stats`` (S, N_STATS); returns a status code."""
+    """Simulate one item once; fills ``stats`` (S, N_STATS); returns a status code.
+
+    The event loop is written out flat, without calls that take arrays: numba reference-counts every array
+    passed to a function with atomic operations, which cost more than the simulation itself.
+
+    Each event is handled in three steps: (1) the event itself (a receipt serves the site's queue; a customer
+    demand, daily bucket or review produces demands on sites), (2) every demand runs up the tree as far as
+    orders go, (3) every shipment or supplier order made in (1)-(2) gets its lead time and enters the heap of
+    pending arrivals.
+    """
     np.random.seed(seed)
     n_sites = parent.shape[0]
-    st = np.zeros((n_sites, _N_STATE), dtype=np.int64)
-    last = np.zeros(n_sites)
-    last_arr = np.zeros(n_sites)
+    oh = np.zeros(n_sites, dtype=np.int64)  # on hand
+    bo = np.zeros(n_sites, dtype=np.int64)  # backordered units waiting at the site
+    ipos = np.zeros(n_sites, dtype=np.int64)  # inventory position
+    short = np.zeros(n_sites, dtype=np.int64)  # a demand was short since the last receipt
+    last = np.zeros(n_sites)  # time of the last change of oh / bo
+    last_arr = np.zeros(n_sites)  # latest arrival scheduled at each site (no crossing)
+    # heap of pending arrivals (time, site, qty)
     ht = np.empty(heap_cap)
-    hsq = np.empty((heap_cap, 2), dtype=np.int64)
-    cnt = np.zeros(1, dtype=np.int64)
+    hs = np.empty(heap_cap, dtype=np.int64)
+    hq = np.empty(heap_cap, dtype=np.int64)
+    hn = 0
+    # FCFS queue per site (circular): child site (-1 customers), quantity, time placed
     qc = np.empty((n_sites, queue_cap), dtype=np.int64)
     qq = np.empty((n_sites, queue_cap), dtype=np.int64)
     qt = np.empty((n_sites, queue_cap))
-    qhl = np.zeros((n_sites, 2), dtype=np.int64)
+    qhead = np.zeros(n_sites, dtype=np.int64)
+    qlen = np.zeros(n_sites, dtype=np.int64)
+    # demands to run up the tree in this event: (site, child, qty)
+    pend_s = np.empty(n_sites + 1, dtype=np.int64)
+    pend_c = np.empty(n_sites + 1, dtype=np.int64)
+    pend_q = np.empty(n_sites + 1, dtype=np.int64)
+    # arrivals to schedule in this event: (site, qty, wait at the upstream; < 0 for a supplier order)
+    bcap = queue_cap + 2 * n_sites * (n_sites + 1) + 4
+    buf_s = np.empty(bcap, dtype=np.int64)
+    buf_q = np.empty(bcap, dtype=np.int64)
+    buf_w = np.empty(bcap)
     stats[:, :] = 0.0
 
     # initial state: position at R + Q (or S), all of it on hand
@@ -309,6 +141,7 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
     any_daily = False
     for s in range(n_sites):
         if not active[s]:
+            cum[s] = total_rate
             continue
         if review[s] > 0.0:
             start = upto[s]
@@ -317,8 +150,8 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
             start = rop[s] + oq[s]
         if start < 0:
             start = 0
-        st[s, _OH] = start
-        st[s, _IP] = start
+        oh[s] = start
+        ipos[s] = start
         if model[s] == DEMAND_NORMAL_DAILY:
             if dmean[s] > 0.0 or dsd[s] > 0.0:
                 any_daily = True
@@ -338,35 +171,88 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
     n_trace = trace_oh.shape[0]
     next_sample = warmup if warmup > 0.0 else 0.0
     k_sample = 0
-    status = STATUS_OK
 
     while True:
-        th = ht[0] if cnt[0] > 0 else np.inf
+        th = ht[0] if hn > 0 else np.inf
         tn = min(min(next_dem, next_tick), min(th, rev_min))
         if not measuring and tn >= warmup:
             for s in range(n_sites):
-                _touch(s, warmup, st, last, stats)
+                last[s] = warmup
+                short[s] = 0
             stats[:, :] = 0.0
-            for s in range(n_sites):
-                st[s, _SHORT] = 0
             measuring = True
         if n_trace > 0:
             lim = tn if tn < horizon else horizon
             while k_sample < n_trace and next_sample <= lim:
                 for s in range(n_sites):
-                    trace_oh[k_sample, s] = st[s, _OH]
-                    trace_bo[k_sample, s] = st[s, _BO]
+                    trace_oh[k_sample, s] = oh[s]
+                    trace_bo[k_sample, s] = bo[s]
                 k_sample += 1
                 next_sample = warmup + k_sample * trace_step
         if tn >= horizon:
             break
         t = tn
+        npend = 0
+        nb = 0
+
+        # ---- (1) the event
         if th == tn:
-            s = hsq[0, 0]
-            q = hsq[0, 1]
-            _heap_pop(ht, hsq, cnt)
-            status = _receive(s, q, t, measuring, partial, lt_mean, lt_sd, crossing, st, last, stats,
-                              last_arr, ht, hsq, cnt, qc, qq, qt, qhl)
+            s = hs[0]
+            q = hq[0]
+            # pop the heap root
+            hn -= 1
+            if hn > 0:
+                xt = ht[hn]
+                xs = hs[hn]
+                xq = hq[hn]
+                i = 0
+                while True:
+                    c = 2 * i + 1
+                    if c >= hn:
+                        break
+                    if c + 1 < hn and ht[c + 1] < ht[c]:
+                        c += 1
+                    if ht[c] >= xt:
+                        break
+                    ht[i] = ht[c]
+                    hs[i] = hs[c]
+                    hq[i] = hq[c]
+                    i = c
+                ht[i] = xt
+                hs[i] = xs
+                hq[i] = xq
+            # receipt at s
+            if measuring:
+                dt = t - last[s]
+                stats[s, ST_AREA_ON_HAND] += oh[s] * dt
+                stats[s, ST_AREA_BACKORDERS] += bo[s] * dt
+                stats[s, ST_CYCLES] += 1
+                stats[s, ST_SHORT_CYCLES] += short[s]
+            last[s] = t
+            short[s] = 0
+            oh[s] += q
+            while qlen[s] > 0 and oh[s] > 0:
+                h = qhead[s]
+                c = qc[s, h]
+                rq = qq[s, h]
+                if c < 0 or partial:
+                    x = rq if rq < oh[s] else oh[s]
+                elif oh[s] >= rq:
+                    x = rq
+                else:
+                    break
+                oh[s] -= x
+                bo[s] -= x
+                if c >= 0:
+                    buf_s[nb] = c
+                    buf_q[nb] = x
+                    buf_w[nb] = t - qt[s, h]
+                    nb += 1
+                if x == rq:
+                    qhead[s] = (h + 1) % queue_cap
+                    qlen[s] -= 1
+                else:
+                    qq[s, h] = rq - x
         elif next_dem == tn:
             u = np.random.random() * total_rate
             lo = 0
@@ -378,76 +264,166 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
                 else:
                     lo = mid + 1
             s = lo
+            q = 1
             if model[s] == DEMAND_COMPOUND and theta[s] > 0.0:
                 q = _logseries(theta[s], math.log1p(-theta[s]))
-            else:
-                q = 1
             if measuring:
                 stats[s, ST_DEMAND_EVENTS] += 1
                 stats[s, ST_CUSTOMER_UNITS] += q
-            status = _demand_chain(s, -1, q, t, measuring, parent, rop, oq, review, lt_mean, lt_sd, partial,
-                                   crossing, st, last, stats, last_arr, ht, hsq, cnt, qc, qq, qt, qhl)
+            pend_s[0] = s
+            pend_c[0] = -1
+            pend_q[0] = q
+            npend = 1
             next_dem = t + np.random.exponential(1.0 / total_rate)
         elif next_tick == tn:
             for s in range(n_sites):
                 if not active[s] or model[s] != DEMAND_NORMAL_DAILY:
                     continue
-                x = dmean[s]
+                xd = dmean[s]
                 if dsd[s] > 0.0:
-                    x += dsd[s] * np.random.standard_normal()
-                q = int(math.floor(x + 0.5))
+                    xd += dsd[s] * np.random.standard_normal()
+                q = int(math.floor(xd + 0.5))
                 if q <= 0:
                     continue
                 if measuring:
                     stats[s, ST_DEMAND_EVENTS] += 1
                     stats[s, ST_CUSTOMER_UNITS] += q
-                status = _demand_chain(s, -1, q, t, measuring, parent, rop, oq, review, lt_mean, lt_sd,
-                                       partial, crossing, st, last, stats, last_arr, ht, hsq, cnt, qc, qq, qt,
-                                       qhl)
-                if status != STATUS_OK:
-                    break
+                pend_s[npend] = s
+                pend_c[npend] = -1
+                pend_q[npend] = q
+                npend += 1
             next_tick += 1.0
         else:
             for s in range(n_sites):
                 if next_rev[s] > tn:
                     continue
                 next_rev[s] += review[s]
-                ip = st[s, _IP]
-                if ip >= upto[s]:
+                if ipos[s] >= upto[s]:
                     continue
-                qty = upto[s] - ip
-                st[s, _IP] += qty
+                qty = upto[s] - ipos[s]
+                ipos[s] += qty
                 if measuring:
                     stats[s, ST_ORDERS] += 1
                     stats[s, ST_ORDER_UNITS] += qty
                 p = parent[s]
                 if p < 0:
-                    arr = t + _lead_time(lt_mean[s], lt_sd[s])
-                    if not crossing:
-                        if arr < last_arr[s]:
-                            arr = last_arr[s]
-                        last_arr[s] = arr
-                    if not _heap_push(ht, hsq, cnt, arr, s, qty):
-                        status = STATUS_HEAP_FULL
+                    buf_s[nb] = s
+                    buf_q[nb] = qty
+                    buf_w[nb] = -1.0
+                    nb += 1
                 else:
-                    status = _demand_chain(p, s, qty, t, measuring, parent, rop, oq, review, lt_mean, lt_sd,
-                                           partial, crossing, st, last, stats, last_arr, ht, hsq, cnt, qc, qq,
-                                           qt, qhl)
-                if status != STATUS_OK:
-                    break
+                    pend_s[npend] = p
+                    pend_c[npend] = s
+                    pend_q[npend] = qty
+                    npend += 1
             rev_min = np.inf
             for s in range(n_sites):
                 if next_rev[s] < rev_min:
                     rev_min = next_rev[s]
-        if status != STATUS_OK:
-            return status
+
+        # ---- (2) demands run up the tree
+        for k in range(npend):
+            s = pend_s[k]
+            child = pend_c[k]
+            q = pend_q[k]
+            while True:
+                if measuring:
+                    dt = t - last[s]
+                    stats[s, ST_AREA_ON_HAND] += oh[s] * dt
+                    stats[s, ST_AREA_BACKORDERS] += bo[s] * dt
+                    stats[s, ST_DEMAND_UNITS] += q
+                last[s] = t
+                ipos[s] -= q
+                n_waiting = qlen[s]
+                if n_waiting == 0 and oh[s] >= q:
+                    x = q
+                elif n_waiting == 0 and (partial or child < 0):
+                    x = oh[s]
+                else:
+                    x = 0
+                if x > 0:
+                    oh[s] -= x
+                    if measuring:
+                        stats[s, ST_IMMEDIATE_UNITS] += x
+                    if child >= 0:
+                        buf_s[nb] = child
+                        buf_q[nb] = x
+                        buf_w[nb] = 0.0
+                        nb += 1
+                rem = q - x
+                if rem > 0:
+                    bo[s] += rem
+                    short[s] = 1
+                    head = qhead[s]
+                    merged = False
+                    if child < 0 and n_waiting > 0:
+                        tail = (head + n_waiting - 1) % queue_cap
+                        if qc[s, tail] < 0:  # consecutive customer backorders share one entry
+                            qq[s, tail] += rem
+                            merged = True
+                    if not merged:
+                        if n_waiting >= queue_cap:
+                            return STATUS_QUEUE_FULL
+                        pos = (head + n_waiting) % queue_cap
+                        qc[s, pos] = child
+                        qq[s, pos] = rem
+                        qt[s, pos] = t
+                        qlen[s] = n_waiting + 1
+                # replenishment decision (continuous review)
+                if review[s] > 0.0 or ipos[s] > rop[s]:
+                    break
+                qty = ((rop[s] - ipos[s]) // oq[s] + 1) * oq[s]
+                ipos[s] += qty
+                if measuring:
+                    stats[s, ST_ORDERS] += 1
+                    stats[s, ST_ORDER_UNITS] += qty
+                p = parent[s]
+                if p < 0:
+                    buf_s[nb] = s
+                    buf_q[nb] = qty
+                    buf_w[nb] = -1.0
+                    nb += 1
+                    break
+                child = s
+                s = p
+                q = qty
+
+        # ---- (3) schedule the shipments and supplier orders
+        for k in range(nb):
+            c = buf_s[k]
+            x = buf_q[k]
+            w = buf_w[k]
+            arr = t + _lead_time(lt_mean[c], lt_sd[c])
+            if not crossing:
+                if arr < last_arr[c]:
+                    arr = last_arr[c]
+                last_arr[c] = arr
+            if w >= 0.0 and measuring:
+                stats[c, ST_WAIT_UNIT_DAYS] += x * w
+                stats[c, ST_SHIPPED_UNITS] += x
+            if hn >= heap_cap:
+                return STATUS_HEAP_FULL
+            i = hn
+            while i > 0:
+                pi = (i - 1) >> 1
+                if ht[pi] <= arr:
+                    break
+                ht[i] = ht[pi]
+                hs[i] = hs[pi]
+                hq[i] = hq[pi]
+                i = pi
+            ht[i] = arr
+            hs[i] = c
+            hq[i] = x
+            hn += 1
 
     if not measuring:  # warm-up longer than the horizon: nothing measured
         stats[:, :] = 0.0
         return STATUS_OK
     for s in range(n_sites):
-        _touch(s, horizon, st, last, stats)
-    for s in range(n_sites):
+        dt = horizon - last[s]
+        stats[s, ST_AREA_ON_HAND] += oh[s] * dt
+        stats[s, ST_AREA_BACKORDERS] += bo[s] * dt
         stats[s, ST_MEASURED_DAYS] = horizon - warmup
     return STATUS_OK
 
