@@ -140,7 +140,8 @@ PLAN = Command(
     "plan",
     "recommend a reorder point and order quantity for every item at every site",
     "Read the case folder, check it, and work out for every item each site stocks the reorder point (order "
-    "when the stock on hand plus on order falls to it) and the order quantity that balance ordering, holding "
+    "when stock on hand plus on order, less backorders, falls to it) and the order quantity that balance "
+    "ordering, holding "
     "and shortage costs, or meet the service target set in case.toml. Results go to the --out folder: "
     "policies.csv for the whole network, a folder per site with its policies and a readable summary, "
     "summary.json with the totals, and charts. If the case has policies.csv (today's policies), their cost "

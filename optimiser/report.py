@@ -20,6 +20,7 @@ from __future__ import annotations
 import json
 import math
 import os
+import re
 import shutil
 import tempfile
 from datetime import UTC, datetime
@@ -206,11 +207,17 @@ def _site_summary(result: PlanResult, site: str, totals: dict[str, Any], frame: 
     notes = _note_counts(frame)
     if notes:
         lines += ["", "## Notes", ""] + [f"- {n} item(s): {words}" for words, n in notes.items()]
-    site_warnings = [w for w in result.warnings if site in w or "network" in w or "case.toml" in w]
+    site_warnings = [w for w in result.warnings if _concerns(w, site, result.site_totals["site"])]
     if site_warnings:
         lines += ["", "## Warnings", ""] + [f"- {w}" for w in site_warnings]
     lines += ["", "## Caution", "", CAUTION, ""]
     return "\n".join(lines)
+
+
+def _concerns(warning: str, site: str, sites: pd.Series) -> bool:
+    """A warning belongs in a site's summary when it names that site or names no site at all."""
+    named = [s for s in sites if re.search(rf"(?<![\w-]){re.escape(str(s))}(?![\w-])", warning)]
+    return not named or site in named
 
 
 def _plots(result: PlanResult, folder: Path) -> list[str]:
