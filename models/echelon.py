@@ -59,6 +59,10 @@ TAIL_TOL = 1e-9
 SUPPORT_SDS = 14.0
 #: Above this support the warehouse demand of count items is moment-matched (normal) instead of convolved.
 MAX_EXACT_SUPPORT = 4096
+#: Smallest pmf width; widths are powers of two from here (items are grouped by width).
+MIN_WIDTH = 64
+#: Cells (items x width) per block of the convolution, to bound memory.
+CHUNK_CELLS = 2_000_000
 #: Relative over-dispersion below which a count variable is taken as Poisson.
 DISPERSION_TOL = 1e-9
 #: Terms of the Fourier series for the batching correction of normal demand.
@@ -129,8 +133,11 @@ def count_pmf(mean: np.ndarray, var: np.ndarray, width: int) -> tuple[np.ndarray
 
 
 def _support_width(mean: np.ndarray, var: np.ndarray, pad: np.ndarray | int = 0) -> np.ndarray:
+    """Support width for a count pmf: normal-type bulk plus the geometric tail of a negative binomial."""
     sd = np.sqrt(np.maximum(var, 0.0))
-    return np.ceil(mean + SUPPORT_SDS * sd + 20.0 + pad).astype(np.int64)
+    ratio = np.where(mean > 0, np.maximum(var, 0.0) / np.where(mean > 0, mean, 1.0), 1.0)
+    geometric = np.maximum(ratio, 1.0) * np.log(1.0 / TAIL_TOL)
+    return np.ceil(mean + SUPPORT_SDS * sd + geometric + pad).astype(np.int64)
 
 
 def _cdf_prefix(pmf: np.ndarray) -> np.ndarray:
@@ -265,7 +272,8 @@ class WarehouseDemand:
     """Warehouse lead-time demand per item.
 
     ``mean``, ``var`` (n,): moments. ``discrete`` (n,) bool: a pmf is held (count demand convolved or fitted)
-    rather than a normal. ``pmf`` (n, width): the pmf for discrete rows (zeros elsewhere). ``step`` (n,) int:
+    rather than a normal. ``blocks``: tuple of ``(rows, pmf)`` holding the pmfs of the discrete rows, grouped
+    by support width (powers of two) to bound memory. ``step`` (n,) int:
     lattice step ``g`` of the demand (1 unless every flow comes in multiples of ``g``). ``rate`` (n,): demand
     rate ``lambda0`` into the warehouse. ``variance_rate`` (n,): ``v0``. ``tail`` (n,): dropped pmf mass.
     ``method`` (n,) int8: 0 normal moments, 1 convolution of order streams, 2 moment-fitted count pmf.
@@ -274,13 +282,25 @@ class WarehouseDemand:
     mean: np.ndarray
     var: np.ndarray
     discrete: np.ndarray
-    pmf: np.ndarray
+    blocks: tuple
     step: np.ndarray
     rate: np.ndarray
     variance_rate: np.ndarray
     tail: np.ndarray
     method: np.ndarray
     lead_sd: np.ndarray
+    stream_short: np.ndarray | None = None
+    stream_long: np.ndarray | None = None
+    stream_const: np.ndarray | None = None
+    own_var_rate: np.ndarray | None = None
+
+    def pmf_of(self, row: int) -> np.ndarray:
+        """The pmf held for one discrete row (empty array for a normal row)."""
+        for rows, pmf in self.blocks:
+            hit = np.flatnonzero(rows == row)
+            if hit.size:
+                return pmf[hit[0]]
+        return np.zeros(0)
 
 
 def warehouse_demand(
@@ -353,7 +373,11 @@ def warehouse_demand(
     win_var = store_sd**2 * lead[:, None]
     stream_var = np.where(active, order_stream_variance(win_mean, win_var, np.where(active, store_q, 1.0)), 0.0)
     var = stream_var.sum(axis=1) + own_sd**2 * lead + rate**2 * lead_sd**2
-    variance_rate = np.where(active, np.maximum(store_mean * store_q, store_sd**2), 0.0).sum(axis=1) + own_sd**2
+    # variance of the units arriving in a window w: per store min(short * w, long * w + const)
+    stream_short = np.where(active, np.maximum(store_mean * store_q, store_sd**2), 0.0)
+    stream_long = np.where(active, store_sd**2, 0.0)
+    stream_const = np.where(active, np.where(store_count, (store_q**2 - 1.0) / 6.0, store_q**2 / 6.0), 0.0)
+    variance_rate = stream_short.sum(axis=1) + own_sd**2
 
     # lattice step: gcd of the batches of active stores when there is no own demand
     qi = np.where(active, np.rint(store_q), 0).astype(np.int64)
@@ -369,28 +393,40 @@ def warehouse_demand(
     exact = discrete & (lead_sd <= 0)
     method = np.where(exact, 1, np.where(discrete, 2, 0)).astype(np.int8)
 
-    width = int(width_need[discrete].max()) if np.any(discrete) else 1
-    pmf = np.zeros((n, width))
     tail = np.zeros(n)
-    if np.any(exact):
-        idx = np.flatnonzero(exact)
-        p, t = _convolve_streams(win_mean[idx], win_var[idx], qi[idx], active[idx],
-                                 own_mean[idx] * lead[idx], own_sd[idx] ** 2 * lead[idx], width)
-        pmf[idx] = p
-        tail[idx] = t
-    fitted = discrete & ~exact
-    if np.any(fitted):
-        idx = np.flatnonzero(fitted)
-        p, t = count_pmf(mean[idx], var[idx], width)
-        pmf[idx] = p
-        tail[idx] = t
-        step[idx] = 1
-    if np.any(tail > TAIL_TOL):
-        bad = int(np.argmax(tail))
-        raise ArithmeticError(f"warehouse demand support too short: dropped tail mass {tail[bad]:.3g} "
-                              f"> TAIL_TOL={TAIL_TOL} (item row {bad})")
-    return WarehouseDemand(mean=mean, var=var, discrete=discrete, pmf=pmf, step=np.where(discrete, step, 1),
+    bucket = np.maximum(2 ** np.ceil(np.log2(np.maximum(width_need, 1))), MIN_WIDTH).astype(np.int64)
+    blocks = []
+    for w in np.unique(bucket[discrete]):
+        idx_all = np.flatnonzero(discrete & (bucket == w))
+        pmf = np.zeros((idx_all.size, int(w)))
+        per = max(1, int(CHUNK_CELLS // w))
+        for start in range(0, idx_all.size, per):
+            part = np.arange(start, min(start + per, idx_all.size))
+            idx = idx_all[part]
+            ex = exact[idx]
+            if np.any(ex):
+                k = idx[ex]
+                p, t = _convolve_streams(win_mean[k], win_var[k], qi[k], active[k], own_mean[k] * lead[k],
+                                         own_sd[k] ** 2 * lead[k], int(w))
+                pmf[part[ex]] = p
+                tail[k] = t
+            if np.any(~ex):
+                k = idx[~ex]
+                p, t = count_pmf(mean[k], var[k], int(w))
+                pmf[part[~ex]] = p
+                tail[k] = t
+        keep = tail[idx_all] <= TAIL_TOL
+        blocks.append((idx_all[keep], pmf[keep]))
+    # a support that would drop more than TAIL_TOL falls back to the moment-matched normal
+    short = discrete & (tail > TAIL_TOL)
+    discrete = discrete & ~short
+    method = np.where(short, 0, method).astype(np.int8)
+    step = np.where(method == 2, 1, step)
+    return WarehouseDemand(mean=mean, var=var, discrete=discrete, blocks=tuple(blocks),
+                           step=np.where(discrete, step, 1),
                            rate=rate, variance_rate=variance_rate, tail=tail, method=method,
+                           stream_short=stream_short, stream_long=stream_long, stream_const=stream_const,
+                           own_var_rate=own_sd**2,
                            lead_sd=lead_sd.copy())
 
 
@@ -461,6 +497,7 @@ class WarehouseState:
     stockout_probability: np.ndarray
     negative_share: np.ndarray
     negative_depth: np.ndarray
+    negative_square: np.ndarray
     ltd_var: np.ndarray
 
 
@@ -520,7 +557,7 @@ class _DiscreteLoss:
         s1 = s1 + np.where(has, t1, 0.0)
         s2 = s2 + np.where(has, t2, 0.0)
         sgt = sgt + np.where(has, tg, 0.0)
-        return s1 / m, s2 / m, sgt / m, k / m, -sy / m
+        return s1 / m, s2 / m, sgt / m, k / m, -sy / m, sy2 / m
 
 
 def _strided_cumsum(a: np.ndarray, g: int) -> np.ndarray:
@@ -533,8 +570,13 @@ def _strided_cumsum(a: np.ndarray, g: int) -> np.ndarray:
     return np.cumsum(pad.reshape(n, wp // g, g), axis=1).reshape(n, wp)[:, :w]
 
 
+def discrete_tables(demand: WarehouseDemand) -> list:
+    """Loss tables of the discrete rows, one per width block: list of ``(rows, _DiscreteLoss)``."""
+    return [(rows, _DiscreteLoss(pmf, demand.step[rows])) for rows, pmf in demand.blocks if rows.size]
+
+
 def warehouse_moments(demand: WarehouseDemand, reorder_point: np.ndarray, order_quantity: np.ndarray,
-                      *, _loss: _DiscreteLoss | None = None) -> WarehouseState:
+                      *, tables: list | None = None) -> WarehouseState:
     """Warehouse expected on hand, backorders and second moment of backorders for ``(R0, Q0)``.
 
     Parameters
@@ -573,18 +615,20 @@ def warehouse_moments(demand: WarehouseDemand, reorder_point: np.ndarray, order_
     stockout = np.zeros(n)
     neg_share = np.zeros(n)
     neg_depth = np.zeros(n)
+    neg_sq = np.zeros(n)
     ltd_var = np.maximum(np.asarray(demand.var, dtype=float), 0.0).copy()
     eip = np.where(demand.discrete, r0 + (q0 + demand.step) / 2.0, r0 + q0 / 2.0)
     d = demand.discrete
     if np.any(d):
-        loss = _loss if _loss is not None else _DiscreteLoss(demand.pmf[d], demand.step[d])
-        s1, s2, sg, ns, nd = loss.lattice_sums(r0[d], q0[d])
-        neg_share[d] = ns
-        neg_depth[d] = nd
-        ltd_var[d] = np.maximum(loss.second - loss.mean**2, 0.0)
-        eb[d] = s1
-        eb2[d] = s2
-        stockout[d] = sg
+        for rows, loss in (tables if tables is not None else discrete_tables(demand)):
+            s1, s2, sg, ns, nd, nq = loss.lattice_sums(r0[rows], q0[rows])
+            neg_sq[rows] = nq
+            neg_share[rows] = ns
+            neg_depth[rows] = nd
+            ltd_var[rows] = np.maximum(loss.second - loss.mean**2, 0.0)
+            eb[rows] = s1
+            eb2[rows] = s2
+            stockout[rows] = sg
     c = ~d
     if np.any(c):
         mu = demand.mean[c]
@@ -605,12 +649,49 @@ def warehouse_moments(demand: WarehouseDemand, reorder_point: np.ndarray, order_
         width_ = np.maximum(hi_ - lo_, 0.0)
         neg_share[c] = np.where(small, (r0[c] < 0).astype(float), width_ / qs)
         neg_depth[c] = np.where(small, np.maximum(-r0[c], 0.0), width_ * (-(lo_ + hi_) / 2.0) / qs)
+        hi_c = np.maximum(hi_, lo_)
+        neg_sq[c] = np.where(small, np.maximum(-r0[c], 0.0) ** 2, (hi_c**3 - lo_**3) / 3.0 / qs)
     eb = np.maximum(eb, 0.0)
     eb2 = np.maximum(eb2, eb * eb)
     on_hand = np.maximum(eip - demand.mean + eb, 0.0)
     return WarehouseState(expected_on_hand=on_hand, expected_backorders=eb, backorders_second_moment=eb2,
-                          negative_share=neg_share, negative_depth=neg_depth, ltd_var=ltd_var,
+                          negative_share=neg_share, negative_depth=neg_depth, negative_square=neg_sq,
+                          ltd_var=ltd_var,
                           stockout_probability=np.clip(stockout, 0.0, 1.0))
+
+
+def arrival_variance(demand: WarehouseDemand, window: np.ndarray) -> np.ndarray:
+    """Variance of the units arriving at the warehouse in a window of given length, per item.
+
+    Parameters
+    ----------
+    demand : WarehouseDemand
+    window : ndarray, shape (n,)
+        Window length (time units).
+
+    Returns
+    -------
+    ndarray, shape (n,)
+
+    Examples
+    --------
+    >>> wd = warehouse_demand(np.array([[0.5]]), np.sqrt([[0.5]]), np.array([[4]]), np.array([[True]]),
+    ...                       np.array([2.0]), np.array([0.0]))
+    >>> float(arrival_variance(wd, np.array([1.0]))[0]), float(arrival_variance(wd, np.array([100.0]))[0])
+    (2.0, 52.5)
+
+    Notes
+    -----
+    Store ``i`` sends batches of ``Q_i``. Over a short window its orders are a Poisson stream of batches:
+    variance ``lambda_i Q_i w``; over a long one the batching only adds a bounded term to the demand variance:
+    ``s_i**2 w + E r (Q_i - r)`` with ``r`` uniform, i.e. ``(Q_i**2 - 1) / 6`` for counts and ``Q_i**2 / 6``
+    for continuous demand. The smaller of the two is used, plus the warehouse's own customers ``s0**2 w``.
+    """
+    w = np.asarray(window, dtype=float)[:, None]
+    if demand.stream_short is None:
+        return demand.variance_rate * w[:, 0]
+    per = np.minimum(demand.stream_short * w, demand.stream_long * w + demand.stream_const)
+    return per.sum(axis=1) + demand.own_var_rate * w[:, 0]
 
 
 def delay_moments(state: WarehouseState, demand: WarehouseDemand) -> tuple[np.ndarray, np.ndarray]:
@@ -641,9 +722,10 @@ def delay_moments(state: WarehouseState, demand: WarehouseDemand) -> tuple[np.nd
     ``S0 = y`` on the lattice ``R0 + g .. R0 + Q0``:
 
     * ``y >= 0``: the order is filled by stock ordered ``y`` units earlier; the backorders are the units that
-      arrived during the oldest order's wait, so for a stream with variance rate ``v0``
-      ``E[B^2 | y] = v0 E[W | y] + lambda0**2 E[W^2 | y]`` (distributional Little's law, exact for Poisson
-      unit demand, where it gives the Svoronos & Zipkin 1988 delay variance);
+      arrived during the oldest order's wait, so ``E[B^2 | y] = E v(W) + lambda0**2 E[W^2 | y]`` with ``v(w)``
+      the variance of the arrivals in a window ``w`` (:func:`arrival_variance`, taken at the mean wait of
+      these points). For Poisson unit demand ``v(w) = lambda0 w`` and this is the distributional Little's law,
+      exact, giving the Svoronos & Zipkin (1988) delay variance;
     * ``y < 0``: the order waits for a warehouse order not yet placed: ``W = L0 + T_|y|`` with ``T_k`` the time
       for the warehouse demand to reach ``k`` more units, ``E T = k / lambda0``. ``T`` is made of the stores'
       own future demand: given the ``k`` units, a store's share of them is binomial, whose variance does not
@@ -665,17 +747,21 @@ def delay_moments(state: WarehouseState, demand: WarehouseDemand) -> tuple[np.nd
     lam = demand.rate
     pos = lam > 0
     safe = np.where(pos, lam, 1.0)
-    v0 = demand.variance_rate
     eb = state.expected_backorders
     ew = np.where(pos, eb / safe, 0.0)
-    # all lattice points by the Little form, then the points with y < 0 replaced by the first-passage form
-    ew2 = (state.backorders_second_moment - (v0 / safe) * eb) / safe**2
-    share = state.negative_share
-    depth = state.negative_depth
     mu0 = demand.mean
-    corr = (share * ((v0 / safe) * mu0 - state.ltd_var + safe**2 * demand.lead_sd**2)
-            + v0 * depth / safe) / safe**2
-    ew2 = ew2 + corr
+    share = state.negative_share
+    # lattice points y < 0: E[B | y] = mu0 - y, E[W | y] = (mu0 - y) / lambda0, W = L0 + T at its mean
+    neg1 = share * mu0 + state.negative_depth
+    neg_sq = share * mu0**2 + 2.0 * mu0 * state.negative_depth + state.negative_square
+    neg2 = share * state.ltd_var + neg_sq
+    # lattice points y >= 0: the Little form with the variance of the arrivals during the wait
+    pos_share = np.maximum(1.0 - share, 0.0)
+    p1 = np.maximum(eb - neg1, 0.0)
+    p2 = np.maximum(state.backorders_second_moment - neg2, 0.0)
+    w_pos = np.where(pos_share > 0, p1 / np.where(pos_share > 0, pos_share, 1.0), 0.0) / safe
+    ew2 = (p2 - pos_share * arrival_variance(demand, w_pos)) / safe**2
+    ew2 = ew2 + neg_sq / safe**2 + share * demand.lead_sd**2
     vw = np.where(pos, np.maximum(ew2 - ew * ew, 0.0), 0.0)
     return ew, vw
 
@@ -971,7 +1057,8 @@ def _evaluate_stores(inp: TwoLevelInputs, ew, vw, store_r, store_q):
     act = inp.store_active
     pol = ss.evaluate_policy(
         inp.store_mean[act] * inp.days_per_year, mean, sd, inp.store_order_cost[act], inp.store_holding_cost[act],
-        store_r[act], store_q[act], distribution=codes, backorder_cost=inp.store_backorder_cost[act],
+        np.where(np.isfinite(store_r[act]), store_r[act], 0.0),
+        np.where(np.isfinite(store_q[act]), store_q[act], 0.0), distribution=codes, backorder_cost=inp.store_backorder_cost[act],
         backorder_basis=inp.backorder_basis)
     return rows, mean, sd, codes, pol
 
@@ -992,14 +1079,11 @@ def _assemble(inp, demand, r0, q0, state, ew, vw, rows, mean, sd, codes, pol, it
     ordering, holding, back, fill = _warehouse_rows(inp, demand, state, r0, q0)
     store_cost = _per_item(rows, np.asarray(pol.total_cost, dtype=float), n)
     sd0 = np.sqrt(np.maximum(demand.var, 0.0))
-    if np.any(demand.discrete):
-        cdf_r0 = np.zeros(n)
-        d = demand.discrete
-        cdf = np.cumsum(demand.pmf[d], axis=1)
-        idx = np.clip(np.rint(r0[d]).astype(np.int64), -1, cdf.shape[1] - 1)
-        cdf_r0[d] = np.where(idx < 0, 0.0, np.take_along_axis(cdf, np.maximum(idx, 0)[:, None], axis=1)[:, 0])
-    else:
-        cdf_r0 = np.zeros(n)
+    cdf_r0 = np.zeros(n)
+    for rws, pmf in demand.blocks:
+        cdf = np.cumsum(pmf, axis=1)
+        idx = np.clip(np.rint(r0[rws]).astype(np.int64), -1, cdf.shape[1] - 1)
+        cdf_r0[rws] = np.where(idx < 0, 0.0, np.take_along_axis(cdf, np.maximum(idx, 0)[:, None], axis=1)[:, 0])
     cyc = np.where(demand.discrete, cdf_r0,
                    special.ndtr((r0 - demand.mean) / np.maximum(sd0, SD_FLOOR * np.maximum(1.0, demand.mean))))
     return TwoLevelResult(
@@ -1054,8 +1138,9 @@ def evaluate_two_level(inp: TwoLevelInputs, store_reorder_point: np.ndarray, sto
     Svoronos & Zipkin (1988).
     """
     sq = np.asarray(store_order_quantity, dtype=float)
-    demand = warehouse_demand(np.where(inp.store_active, inp.store_mean, 0.0), inp.store_sd,
-                              np.where(inp.store_active, sq, 1.0), inp.store_count, inp.warehouse_lead,
+    flowing = inp.store_active & (inp.store_mean > 0) & np.isfinite(sq) & (sq > 0)
+    demand = warehouse_demand(np.where(flowing, inp.store_mean, 0.0), inp.store_sd,
+                              np.where(flowing, sq, 1.0), inp.store_count, inp.warehouse_lead,
                               inp.warehouse_lead_sd, inp.warehouse_own_mean, inp.warehouse_own_sd,
                               inp.warehouse_count)
     r0 = np.asarray(warehouse_reorder_point, dtype=float)
@@ -1084,9 +1169,12 @@ def single_site_seed(inp: TwoLevelInputs):
     _, mean, sd, codes, pol = _optimise_stores(inp, zero, zero, inp.store_fixed_q)
     store_q = np.full((n, m), 1.0)
     store_r = np.zeros((n, m))
-    store_q[act] = pol.order_quantity
+    q_seed = np.asarray(pol.order_quantity, dtype=float)
+    store_q[act] = np.where(q_seed > 0, q_seed, np.nan)   # zero-demand stores keep a free Q
     store_r[act] = pol.reorder_point
-    demand = warehouse_demand(np.where(act, inp.store_mean, 0.0), inp.store_sd, store_q, inp.store_count,
+    flowing = act & (inp.store_mean > 0) & np.isfinite(store_q)
+    demand = warehouse_demand(np.where(flowing, inp.store_mean, 0.0), inp.store_sd,
+                              np.where(flowing, store_q, 1.0), inp.store_count,
                               inp.warehouse_lead, inp.warehouse_lead_sd, inp.warehouse_own_mean,
                               inp.warehouse_own_sd, inp.warehouse_count)
     w = np.where(act, inp.store_mean, 0.0)
@@ -1152,8 +1240,7 @@ def optimise_two_level(inp: TwoLevelInputs, *, points: int = SEARCH_POINTS, roun
     store_r, store_q, r0_seed, q0, demand = single_site_seed(inp)
     demand = _lattice_q0(demand, q0)
     seed_eval = evaluate_two_level(inp, store_r, store_q, r0_seed, q0)
-    loss = _DiscreteLoss(demand.pmf[demand.discrete], demand.step[demand.discrete]) \
-        if np.any(demand.discrete) else None
+    tables = discrete_tables(demand)
     sd0 = np.sqrt(np.maximum(demand.var, 0.0))
     disc = demand.discrete
     lo = -q0.astype(float)
@@ -1166,7 +1253,7 @@ def optimise_two_level(inp: TwoLevelInputs, *, points: int = SEARCH_POINTS, roun
     done = np.zeros(n, dtype=bool)
 
     def network_cost(r0c):
-        state = warehouse_moments(demand, r0c, q0, _loss=loss)
+        state = warehouse_moments(demand, r0c, q0, tables=tables)
         ew, vw = delay_moments(state, demand)
         rows, _, _, _, pol = _optimise_stores(inp, ew, vw, store_q)
         ordering, holding, back, _ = _warehouse_rows(inp, demand, state, r0c, q0)
@@ -1193,7 +1280,7 @@ def optimise_two_level(inp: TwoLevelInputs, *, points: int = SEARCH_POINTS, roun
         if np.all(done):
             break
     # final: stores re-optimised at the best R0, then evaluated
-    state = warehouse_moments(demand, best_r, q0, _loss=loss)
+    state = warehouse_moments(demand, best_r, q0, tables=tables)
     ew, vw = delay_moments(state, demand)
     rows, mean, sd, codes, pol = _optimise_stores(inp, ew, vw, store_q)
     result = _assemble(inp, demand, best_r, q0, state, ew, vw, rows, mean, sd, codes, pol, its, done)

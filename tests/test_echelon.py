@@ -142,14 +142,14 @@ def test_warehouse_moments_discrete_brute_force():
     wd = ech.warehouse_demand(lam, np.sqrt(lam), q, np.ones_like(q, dtype=bool), np.array([4.0, 4.0]),
                               np.zeros(2))
     assert list(wd.step) == [2, 1]
-    x = np.arange(wd.pmf.shape[1])
     for r0 in (-9, -4, -1, 0, 3, 8):
         q0 = np.array([8.0, 5.0])
         st = ech.warehouse_moments(wd, np.array([r0, r0], dtype=float), q0)
         for row in range(2):
             g = wd.step[row]
             ys = r0 + g * np.arange(1, int(q0[row]) // g + 1)
-            p = wd.pmf[row]
+            p = wd.pmf_of(row)
+            x = np.arange(p.size)
             eb = np.mean([p @ np.maximum(x - y, 0) for y in ys])
             eb2 = np.mean([p @ np.maximum(x - y, 0) ** 2 for y in ys])
             eoh = np.mean([p @ np.maximum(y - x, 0) for y in ys])
@@ -161,7 +161,7 @@ def test_warehouse_moments_discrete_brute_force():
 def test_warehouse_moments_normal_against_integration():
     mean, var = 40.0, 90.0
     wd = ech.WarehouseDemand(mean=np.array([mean]), var=np.array([var]), discrete=np.array([False]),
-                             pmf=np.zeros((1, 1)), step=np.array([1]), rate=np.array([10.0]),
+                             blocks=(), step=np.array([1]), rate=np.array([10.0]),
                              variance_rate=np.array([22.5]), tail=np.zeros(1), method=np.zeros(1, np.int8),
                              lead_sd=np.zeros(1))
     sd = np.sqrt(var)
