@@ -1,0 +1,1046 @@
+"""Grouping items under shared order costs: a mixed-integer model (pyomo, solved by HiGHS).
+
+One *family* (the items one site buys from one supplier) shares a major order cost ``S``. The model picks a
+base cycle ``T`` from a finite candidate set and a multiple ``k_i`` per item (item ``i`` ordered every ``k_i
+T``). Each (item, interval) carries, besides its minor order cost and cycle stock, the safety-stock holding
+and backorder cost of a periodic order-up-to policy with review interval ``k_i T`` and the item's lead time,
+so that grouping can be compared with ordering every item alone on the same stochastic basis.
+
+Constraints (each optional):
+
+* vehicle capacity per order, by volume and by weight. The largest order is the one in which all items come
+  together, of mean size ``sum_i D_i k_i T v_i``;
+* supplier minimum order value. The smallest order holds only the items with ``k_i = 1`` (at base-cycle
+  times ``t = 1, 1 + lcm(k), ...`` no other item is due), of mean value ``sum_{k_i = 1} D_i T u_i``;
+* maximum interval per item (shelf life): ``k_i T <= L_i``.
+
+Candidate set and its tolerance
+-------------------------------
+Candidates are a geometric grid ``T_j = T_lo * rho^j`` over a range ``[T_lo, T_hi]`` that provably contains
+the optimum, plus special points: the deterministic exact cyclic optimum, the RAND cycle, the ends of the
+feasible range, shelf-life breakpoints ``L_i / k`` and the capacity breakpoints ``C / sum_i D_i k_i(T_j)
+v_i`` of the unconstrained multiples at every grid point. After the solve the chosen multiples are held
+fixed and ``T`` is re-optimised continuously inside its feasible interval (so a binding capacity puts ``T``
+exactly on its breakpoint ``C / sum D k v``).
+
+*Claim.* If no minimum order value applies (only capacity and shelf life, which for fixed ``k`` admit every
+smaller ``T``) or no capacity/shelf-life limit applies (only a minimum value, which admits every larger
+``T``), the cost returned is at most ``rho`` times the cost of the best cyclic policy with multiples in the
+allowed set. *Proof.* Let ``(T*, k*)`` be optimal and ``T'`` the nearest grid point below ``T*`` (resp.
+above); then ``T*/rho <= T' <= T*`` (resp. ``T* <= T' <= rho T*``) and ``(T', k*)`` is feasible. Its terms
+change as follows: ``A/T' <= rho A/T*``, ``B T' <= rho B T*`` (resp. the mirror image); the safety-stock
+term has the form ``sigma(tau) * h * m(b / (h tau))`` with ``sigma`` increasing in the interval ``tau`` and
+``m(r)`` a minimum of functions linear in ``r`` (hence concave, ``m(0) >= 0``, so ``m(rho r) <= rho m(r)``);
+under a cycle-service target it is ``sigma(tau)`` times a constant; in both cases it grows by at most
+``rho``. The model's optimum over the candidates is no worse than ``(T', k*)``, and the final continuous
+re-optimisation never raises the cost. When both kinds of constraint bind at once, or under a fill-rate
+target, no grid bound is claimed: the answer is then the proven optimum over the candidate set (plus the
+re-optimisation), reported as such.
+
+The range: every policy with cycle ``T`` costs at least ``S/T + sum_i sqrt(2 s_i H_i)`` (each item at least
+its EOQ cost, safety stock >= 0) and at least ``T sum_i H_i / 2`` (``k_i >= 1``); with any feasible cost
+``U`` the optimum lies in ``[S / (U - sum sqrt(2 s H)), 2 U / sum H]``. Candidates whose lower bound ``S/T +
+sum_i min_k cost_i(k, T)`` exceeds ``U`` are dropped before the model is built (exact pruning), as are
+multiples above each item's unconstrained best at that candidate (dominated: higher cost, larger load, no
+help with the minimum value, tighter shelf life)."""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy.optimize import minimize_scalar
+from scipy.special import erfc, ndtri
+
+from models import joint
+
+#: default largest multiple k_i
+K_MAX = 32
+#: default ratio of consecutive grid candidates (the proven tolerance of the candidate set, see module doc)
+GRID_RATIO = 1.002
+#: hard cap on the number of grid candidates (the ratio is widened, and reported, to respect it)
+MAX_GRID = 4000
+#: default relative MIP gap asked of HiGHS (a smaller gap than this is reported as optimal)
+MIP_GAP = 1e-7
+#: default solver time limit in seconds
+TIME_LIMIT = 60.0
+#: z limits of the normal approximation
+Z_MIN, Z_MAX = -8.0, 8.0
+#: relative slack when checking constraints of a returned solution
+CHECK_TOL = 1e-7
+#: Lagrangian bounds: bisection steps per multiplier, coordinate sweeps when several constraints are priced
+LAGRANGE_BISECT = 48
+LAGRANGE_SWEEPS = 3
+#: bisection steps for the fill-rate safety factor
+FILL_BISECT = 60
+
+MODES = ("cost", "cycle_service", "fill_rate")
+BASES = ("per_unit", "per_unit_year")
+
+
+# --------------------------------------------------------------------------- stochastic part
+_INV_SQRT_2PI = 1.0 / math.sqrt(2.0 * math.pi)
+
+
+def _std_loss(z: np.ndarray) -> np.ndarray:
+    """Standard normal first-order loss ``G(z) = phi(z) - z (1 - Phi(z))`` (upper tail by erfc)."""
+    return np.exp(-0.5 * z * z) * _INV_SQRT_2PI - z * 0.5 * erfc(z / math.sqrt(2.0))
+
+
+def periodic_review_cost(
+    interval,
+    annual_demand,
+    demand_var,
+    lead_time,
+    lead_time_sd,
+    holding_cost,
+    backorder_cost,
+    *,
+    backorder_basis: str = "per_unit",
+    mode: str = "cost",
+    target=None,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Safety-stock and backorder cost of a periodic order-up-to policy (normal approximation).
+
+    Parameters
+    ----------
+    interval : array_like
+        Review interval ``tau`` (years); broadcast with the item arrays.
+    annual_demand, demand_var : array_like
+        Mean ``D`` and variance ``V`` of demand per year (daily variance times days per year).
+    lead_time, lead_time_sd : array_like
+        Mean and standard deviation of the lead time (years).
+    holding_cost : array_like
+        ``h`` per unit per year.
+    backorder_cost : array_like
+        ``b`` per unit short (``per_unit``) or ``p`` per unit-year (``per_unit_year``); NaN = none (0).
+    backorder_basis : {"per_unit", "per_unit_year"}
+    mode : {"cost", "cycle_service", "fill_rate"}
+        ``cost``: the cost-optimal level; otherwise the level meeting ``target``.
+    target : array_like, optional
+        Cycle service or fill rate in (0, 1) for the service modes.
+
+    Returns
+    -------
+    cost : numpy.ndarray
+        ``h sigma E[(z - Z)^+] + backorder cost`` per year (cycle stock ``h D tau / 2`` not included).
+    z : numpy.ndarray
+        Safety factor.
+    sigma : numpy.ndarray
+        Standard deviation of demand over ``tau + L``.
+
+    Notes
+    -----
+    Protection period ``tau + L``: ``sigma^2 = (tau + L) V + D^2 sd_L^2``; order-up-to level
+    ``D (tau + L) + z sigma``. Expected on hand at the end of a cycle ``sigma G(-z)``, expected shortage per
+    cycle ``sigma G(z)`` (``G`` the standard normal loss function). Per unit short the cost per year is
+    ``h sigma G(-z) + (b / tau) sigma G(z)``, minimised at ``Phi(z) = b / (b + h tau)``; per unit-year
+    ``h sigma G(-z) + p sigma G(z)``, minimised at ``Phi(z) = p / (p + h)``. Fill rate ``beta``:
+    ``sigma G(z) = (1 - beta) D tau``.
+
+    References
+    ----------
+    Silver, E. A., Pyke, D. F., Peterson, R. (1998). Inventory Management and Production Planning and
+    Scheduling, 3rd ed., Wiley, ch. 7 (periodic review, order-up-to level).
+    Atkins, D. R., Iyogun, P. O. (1988). Periodic versus "can-order" policies for coordinated multi-item
+    inventory systems. Management Science 34(6), 791-796.
+
+    Examples
+    --------
+    >>> c, z, s = periodic_review_cost(0.1, 100.0, 100.0, 0.0, 0.0, 1.0, float("nan"),
+    ...                                mode="cycle_service", target=0.5)
+    >>> round(float(c), 4), float(z)
+    (1.2616, 0.0)
+    """
+    if mode not in MODES:
+        raise ValueError(f"mode must be one of {MODES}, got {mode!r}")
+    if backorder_basis not in BASES:
+        raise ValueError(f"backorder_basis must be one of {BASES}, got {backorder_basis!r}")
+    tau = np.asarray(interval, dtype=float)
+    D = np.asarray(annual_demand, dtype=float)
+    V = np.asarray(demand_var, dtype=float)
+    L = np.asarray(lead_time, dtype=float)
+    sL = np.asarray(lead_time_sd, dtype=float)
+    h = np.asarray(holding_cost, dtype=float)
+    b = np.asarray(backorder_cost, dtype=float)
+    b = np.where(np.isfinite(b), b, 0.0)
+    sigma = np.sqrt(np.maximum((tau + L) * V + D**2 * sL**2, 0.0))
+    shape = np.broadcast_shapes(tau.shape, D.shape, V.shape, L.shape, sL.shape, h.shape, b.shape)
+    if mode == "cost":
+        if backorder_basis == "per_unit":
+            with np.errstate(divide="ignore", invalid="ignore"):
+                ratio = np.where(b > 0, b / (b + h * tau), 0.0)
+        else:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                ratio = np.where(b > 0, b / (b + h), 0.0)
+        z = np.clip(ndtri(np.clip(ratio, 0.0, 1.0)), Z_MIN, Z_MAX)
+    elif mode == "cycle_service":
+        t = np.asarray(target, dtype=float)
+        if t.size == 0 or np.any(~(t > 0) | ~(t < 1)):
+            raise ValueError(f"target must lie in (0, 1) for mode 'cycle_service', got {target!r}")
+        z = np.clip(ndtri(t), Z_MIN, Z_MAX)
+    else:
+        t = np.asarray(target, dtype=float)
+        if t.size == 0 or np.any(~(t > 0) | ~(t < 1)):
+            raise ValueError(f"target must lie in (0, 1) for mode 'fill_rate', got {target!r}")
+        with np.errstate(divide="ignore", invalid="ignore"):
+            want = np.where(sigma > 0, (1.0 - t) * D * tau / sigma, np.inf)
+        want = np.broadcast_to(want, shape)
+        lo = np.full(shape, Z_MIN)
+        hi = np.full(shape, Z_MAX)
+        for _ in range(FILL_BISECT):  # G is decreasing: find G(z) = want
+            mid = 0.5 * (lo + hi)
+            above = _std_loss(mid) > want
+            lo = np.where(above, mid, lo)
+            hi = np.where(above, hi, mid)
+        z = 0.5 * (lo + hi)
+    z = np.broadcast_to(z, shape)
+    short = sigma * _std_loss(z)
+    on_hand = sigma * _std_loss(-z)
+    if backorder_basis == "per_unit":
+        with np.errstate(divide="ignore", invalid="ignore"):
+            back = np.where(b > 0, b * short / tau, 0.0)
+    else:
+        back = b * short
+    cost = h * on_hand + back
+    return np.broadcast_to(cost, shape).copy(), np.asarray(z).copy(), np.broadcast_to(sigma, shape).copy()
+
+
+# --------------------------------------------------------------------------- data and result
+@dataclass(frozen=True)
+class Family:
+    """One order family: arrays of shape (n,), times in years, costs per year.
+
+    ``demand_var`` is the variance of demand per year; ``unit_value`` the value per unit counted towards
+    the minimum order value; ``volume``/``weight`` per unit; ``max_interval`` the longest allowed interval
+    (inf = none); capacities inf = none; ``min_order_value`` 0 = none.
+    """
+
+    major_cost: float
+    minor_cost: np.ndarray
+    holding_cost: np.ndarray
+    annual_demand: np.ndarray
+    demand_var: np.ndarray
+    lead_time: np.ndarray
+    lead_time_sd: np.ndarray
+    backorder_cost: np.ndarray
+    unit_value: np.ndarray
+    volume: np.ndarray
+    weight: np.ndarray
+    max_interval: np.ndarray
+    capacity_volume: float = math.inf
+    capacity_weight: float = math.inf
+    min_order_value: float = 0.0
+    backorder_basis: str = "per_unit"
+    mode: str = "cost"
+    target: np.ndarray | None = None
+
+
+def make_family(
+    major_cost: float,
+    minor_cost,
+    holding_cost,
+    annual_demand,
+    *,
+    demand_var=0.0,
+    lead_time=0.0,
+    lead_time_sd=0.0,
+    backorder_cost=np.nan,
+    unit_value=0.0,
+    volume=0.0,
+    weight=0.0,
+    max_interval=np.inf,
+    capacity_volume: float = math.inf,
+    capacity_weight: float = math.inf,
+    min_order_value: float = 0.0,
+    backorder_basis: str = "per_unit",
+    mode: str = "cost",
+    target=None,
+) -> Family:
+    """Validate and broadcast the data of one family.
+
+    Parameters
+    ----------
+    major_cost : float
+        ``S > 0`` per family order.
+    minor_cost, holding_cost, annual_demand : array_like, shape (n,)
+        ``s_i >= 0``, ``h_i > 0``, ``D_i > 0`` (drop zero-demand items before grouping).
+    demand_var, lead_time, lead_time_sd, backorder_cost, unit_value, volume, weight, max_interval
+        Per-item arrays or scalars (see :class:`Family`).
+    capacity_volume, capacity_weight, min_order_value : float
+        Per-order limits.
+    backorder_basis, mode, target
+        See :func:`periodic_review_cost`.
+
+    Returns
+    -------
+    Family
+
+    Examples
+    --------
+    >>> make_family(10.0, [1.0, 2.0], 1.0, 5.0).minor_cost.tolist()
+    [1.0, 2.0]
+    """
+    s = np.atleast_1d(np.asarray(minor_cost, dtype=float))
+    n = s.size
+    if n == 0:
+        raise ValueError("minor_cost must hold at least one item")
+
+    def arr(name: str, x, lo: float, lo_open: bool = False, allow_nan: bool = False) -> np.ndarray:
+        a = np.broadcast_to(np.asarray(x, dtype=float), (n,)).astype(float)
+        bad = np.isnan(a) if not allow_nan else np.zeros(n, dtype=bool)
+        vals = np.where(np.isnan(a), np.inf, a)
+        bad |= (vals <= lo) if lo_open else (vals < lo)
+        if np.any(bad):
+            i = int(np.argmax(bad))
+            rule = f"> {lo}" if lo_open else f">= {lo}"
+            raise ValueError(f"{name} must be {rule} for every item; item {i} has {a[i]!r}")
+        return a
+
+    S = float(major_cost)
+    if not math.isfinite(S) or S <= 0:
+        raise ValueError(f"major_cost must be finite and > 0, got {major_cost!r}")
+    fam = Family(
+        major_cost=S,
+        minor_cost=arr("minor_cost", s, 0.0),
+        holding_cost=arr("holding_cost", holding_cost, 0.0, lo_open=True),
+        annual_demand=arr("annual_demand", annual_demand, 0.0, lo_open=True),
+        demand_var=arr("demand_var", demand_var, 0.0),
+        lead_time=arr("lead_time", lead_time, 0.0),
+        lead_time_sd=arr("lead_time_sd", lead_time_sd, 0.0),
+        backorder_cost=arr("backorder_cost", backorder_cost, 0.0, allow_nan=True),
+        unit_value=arr("unit_value", unit_value, 0.0),
+        volume=arr("volume", volume, 0.0),
+        weight=arr("weight", weight, 0.0),
+        max_interval=arr("max_interval", max_interval, 0.0, lo_open=True),
+        capacity_volume=float(capacity_volume),
+        capacity_weight=float(capacity_weight),
+        min_order_value=float(min_order_value),
+        backorder_basis=backorder_basis,
+        mode=mode,
+        target=None if target is None else np.broadcast_to(np.asarray(target, dtype=float), (n,)).copy(),
+    )
+    for name in ("capacity_volume", "capacity_weight"):
+        v = getattr(fam, name)
+        if math.isnan(v) or v <= 0:
+            raise ValueError(f"{name} must be > 0 (inf = none), got {v!r}")
+    if not math.isfinite(fam.min_order_value) or fam.min_order_value < 0:
+        raise ValueError(f"min_order_value must be finite and >= 0, got {min_order_value!r}")
+    if mode not in MODES:
+        raise ValueError(f"mode must be one of {MODES}, got {mode!r}")
+    if backorder_basis not in BASES:
+        raise ValueError(f"backorder_basis must be one of {BASES}, got {backorder_basis!r}")
+    if mode != "cost" and fam.target is None:
+        raise ValueError(f"mode {mode!r} needs a target")
+    return fam
+
+
+@dataclass(frozen=True)
+class FamilySolution:
+    """Result of :func:`solve_family`.
+
+    Attributes
+    ----------
+    status : str
+        ``"optimal"`` (proven optimal over the candidate set, then re-optimised in T), ``"time_limit"``
+        (best solution found, with ``gap``), ``"fallback"`` (solver failed: RAND used; not optimal) or
+        ``"infeasible"`` (no cycle meets the constraints; the unconstrained RAND policy is returned and the
+        violated constraints are named in ``message``).
+    message : str
+    cycle : float
+        Base cycle T (years).
+    multiples : numpy.ndarray of int64
+    order_up_to, safety_factor : numpy.ndarray
+    item_cost : numpy.ndarray
+        Per item per year: minor order cost + cycle stock + safety stock + backorders.
+    major_cost_rate : float
+        ``S / T``.
+    total_cost : float
+    candidate_cost : float
+        Model objective at the chosen candidate (before the continuous re-optimisation of T).
+    bound : float
+        Lower bound proven by the solver over the candidate set (NaN when none).
+    gap : float
+        ``(candidate_cost - bound) / candidate_cost`` (NaN when no bound).
+    binding : tuple of str
+        Constraints holding with equality at the answer.
+    feasible : bool
+        Independent numpy check of all constraints on the returned policy.
+    candidates, candidates_kept, variables : int
+    grid_ratio : float
+        Ratio of the grid actually used (tolerance of the candidate set, see module notes).
+    tolerance_proven : bool
+        True when the grid tolerance claim applies to this family's constraints and mode.
+    seconds : float
+    """
+
+    status: str
+    message: str
+    cycle: float
+    multiples: np.ndarray
+    order_up_to: np.ndarray
+    safety_factor: np.ndarray
+    item_cost: np.ndarray
+    major_cost_rate: float
+    total_cost: float
+    candidate_cost: float
+    bound: float
+    gap: float
+    binding: tuple[str, ...]
+    feasible: bool
+    candidates: int
+    candidates_kept: int
+    variables: int
+    grid_ratio: float
+    tolerance_proven: bool
+    seconds: float
+    extra: dict = field(default_factory=dict)
+
+
+# --------------------------------------------------------------------------- helpers
+def _k_set(k_max: int, powers_of_two: bool) -> np.ndarray:
+    if powers_of_two:
+        return 2 ** np.arange(int(math.floor(math.log2(k_max))) + 1)
+    return np.arange(1, k_max + 1)
+
+
+def _item_costs(fam: Family, T: np.ndarray, ks: np.ndarray):
+    """Costs of (candidate, item, multiple): shape (c, n, K); also z and sigma."""
+    tau = T[:, None, None] * ks[None, None, :]
+    H = (fam.holding_cost * fam.annual_demand)[None, :, None]
+    det = fam.minor_cost[None, :, None] / tau + 0.5 * tau * H
+    tgt = None if fam.target is None else fam.target[None, :, None]
+    ss, z, sig = periodic_review_cost(
+        tau,
+        fam.annual_demand[None, :, None],
+        fam.demand_var[None, :, None],
+        fam.lead_time[None, :, None],
+        fam.lead_time_sd[None, :, None],
+        fam.holding_cost[None, :, None],
+        fam.backorder_cost[None, :, None],
+        backorder_basis=fam.backorder_basis,
+        mode=fam.mode,
+        target=tgt,
+    )
+    cost = det + ss
+    cost = np.where(tau <= fam.max_interval[None, :, None] * (1 + 1e-12), cost, np.inf)
+    return cost
+
+
+def _policy_cost(fam: Family, T: float, k: np.ndarray):
+    """Per-item cost, z, sigma of one policy."""
+    tau = T * k
+    det = fam.minor_cost / tau + 0.5 * tau * fam.holding_cost * fam.annual_demand
+    ss, z, sig = periodic_review_cost(
+        tau, fam.annual_demand, fam.demand_var, fam.lead_time, fam.lead_time_sd, fam.holding_cost,
+        fam.backorder_cost, backorder_basis=fam.backorder_basis, mode=fam.mode, target=fam.target,
+    )
+    return det + ss, z, sig
+
+
+def _loads(fam: Family):
+    return fam.annual_demand * fam.volume, fam.annual_demand * fam.weight, fam.annual_demand * fam.unit_value
+
+
+def check_policy(fam: Family, T: float, k: np.ndarray) -> tuple[bool, tuple[str, ...], list[str]]:
+    """Check a policy against the family's constraints.
+
+    Parameters
+    ----------
+    fam : Family
+    T : float
+        Base cycle (years).
+    k : numpy.ndarray of int
+        Multiples.
+
+    Returns
+    -------
+    feasible : bool
+    binding : tuple of str
+        Constraints met with equality (relative ``CHECK_TOL * 100``).
+    violations : list of str
+        One sentence per violated constraint.
+
+    Examples
+    --------
+    >>> f = make_family(10.0, [1.0], 1.0, 10.0, volume=1.0, capacity_volume=5.0)
+    >>> check_policy(f, 1.0, np.array([1]))[0]
+    False
+    """
+    dv, dw, du = _loads(fam)
+    k = np.asarray(k)
+    viol: list[str] = []
+    bind: list[str] = []
+    tight = 100 * CHECK_TOL
+    for name, load, cap in (
+        ("capacity_volume", float(np.sum(dv * k) * T), fam.capacity_volume),
+        ("capacity_weight", float(np.sum(dw * k) * T), fam.capacity_weight),
+    ):
+        if math.isfinite(cap):
+            if load > cap * (1 + CHECK_TOL):
+                viol.append(f"{name}: largest order {load:.6g} exceeds {cap:.6g}")
+            elif load >= cap * (1 - tight):
+                bind.append(name)
+    if fam.min_order_value > 0:
+        val = float(np.sum(du[k == 1]) * T)
+        if val < fam.min_order_value * (1 - CHECK_TOL):
+            viol.append(f"min_order_value: smallest order worth {val:.6g} is below {fam.min_order_value:.6g}")
+        elif val <= fam.min_order_value * (1 + tight):
+            bind.append("min_order_value")
+    ivl = T * k
+    over = ivl > fam.max_interval * (1 + CHECK_TOL)
+    if np.any(over):
+        i = int(np.argmax(over))
+        viol.append(f"shelf_life: item {i} interval {ivl[i]:.6g} exceeds {fam.max_interval[i]:.6g}")
+    if np.any(np.isfinite(fam.max_interval) & (ivl >= fam.max_interval * (1 - tight))):
+        bind.append("shelf_life")
+    return not viol, tuple(bind), viol
+
+
+def _feasible_range(fam: Family) -> tuple[float, float, list[str]]:
+    """Cycles admitting at least one feasible policy (all k = 1 minimises load, maximises order value)."""
+    dv, dw, du = _loads(fam)
+    lo, hi = 0.0, math.inf
+    why = []
+    if fam.min_order_value > 0:
+        tot = float(du.sum())
+        lo = fam.min_order_value / tot if tot > 0 else math.inf
+        why.append("min_order_value")
+    for name, load, cap in (("capacity_volume", dv.sum(), fam.capacity_volume),
+                            ("capacity_weight", dw.sum(), fam.capacity_weight)):
+        if math.isfinite(cap) and load > 0:
+            hi = min(hi, cap / float(load))
+            why.append(name)
+    if np.any(np.isfinite(fam.max_interval)):
+        hi = min(hi, float(np.min(fam.max_interval)))
+        why.append("shelf_life")
+    return lo, hi, why
+
+
+def _repair(fam: Family, T: np.ndarray, k_unc: np.ndarray, ks: np.ndarray) -> np.ndarray:
+    """Heuristic feasible multiples per candidate (c, n): cap k uniformly for capacity, force k = 1 on the
+    most valuable items for the minimum value; all ones as the last resort (feasible inside the range)."""
+    dv, dw, du = _loads(fam)
+    k = k_unc.astype(float)
+    capv, capw = fam.capacity_volume, fam.capacity_weight
+
+    def cap_ok(kk):
+        ok = np.ones(kk.shape[0], dtype=bool)
+        if math.isfinite(capv):
+            ok &= (kk @ dv) * T <= capv * (1 + 1e-12)
+        if math.isfinite(capw):
+            ok &= (kk @ dw) * T <= capw * (1 + 1e-12)
+        return ok
+
+    if math.isfinite(capv) or math.isfinite(capw):
+        best = np.ones_like(k)
+        done = cap_ok(k)
+        best[done] = k[done]
+        for kap in ks[::-1]:  # largest uniform cap that fits
+            kk = np.minimum(k, kap)
+            ok = cap_ok(kk) & ~done
+            best[ok] = kk[ok]
+            done |= ok
+        k = best
+    if fam.min_order_value > 0:
+        val = ((k == 1) * du[None, :]).sum(axis=1) * T
+        short = val < fam.min_order_value
+        if np.any(short):
+            order = np.argsort(-du)
+            need = fam.min_order_value / T[short]
+            forced = k[short].copy()
+            is1 = forced == 1
+            # add items (most valuable first) until the value of the k = 1 items reaches the minimum
+            base = (is1 * du[None, :]).sum(axis=1)
+            extra = np.cumsum(np.where(is1[:, order], 0.0, du[order][None, :]), axis=1)
+            take = (base[:, None] + np.concatenate((np.zeros((extra.shape[0], 1)), extra[:, :-1]), axis=1)
+                    < need[:, None])
+            cols = order[None, :].repeat(forced.shape[0], axis=0)
+            rows = np.arange(forced.shape[0])[:, None].repeat(order.size, axis=1)
+            forced[rows[take], cols[take]] = 1.0
+            k[short] = forced
+    # last resort: all ones where still infeasible
+    bad = ~cap_ok(k)
+    if fam.min_order_value > 0:
+        bad |= ((k == 1) * du[None, :]).sum(axis=1) * T < fam.min_order_value * (1 - 1e-12)
+    k[bad] = 1.0
+    return k.astype(np.int64)
+
+
+def _interval_for(fam: Family, k: np.ndarray) -> tuple[float, float]:
+    dv, dw, du = _loads(fam)
+    lo, hi = 0.0, math.inf
+    if fam.min_order_value > 0:
+        v = float(du[k == 1].sum())
+        lo = fam.min_order_value / v if v > 0 else math.inf
+    for load, cap in ((float(dv @ k), fam.capacity_volume), (float(dw @ k), fam.capacity_weight)):
+        if math.isfinite(cap) and load > 0:
+            hi = min(hi, cap / load)
+    if np.any(np.isfinite(fam.max_interval)):
+        hi = min(hi, float(np.min(fam.max_interval / k)))
+    return lo, hi
+
+
+def _polish(fam: Family, T0: float, k: np.ndarray, t_cap: float) -> float:
+    """Re-optimise T for fixed k within its feasible interval; never worse than T0."""
+    lo, hi = _interval_for(fam, k)
+    hi = min(hi, t_cap)
+    if not (lo <= T0 * (1 + 1e-12) and T0 <= hi * (1 + 1e-12)):
+        return T0
+
+    def f(x: float) -> float:
+        c, _, _ = _policy_cost(fam, x, k)
+        return fam.major_cost / x + float(c.sum())
+
+    cands = [T0]
+    a, b = max(lo, T0 * 1e-3), min(hi, T0 * 1e3)
+    if a < b:
+        r = minimize_scalar(lambda u: f(math.exp(u)), bounds=(math.log(a), math.log(b)), method="bounded",
+                            options={"xatol": 1e-10})
+        cands.append(math.exp(float(r.x)))
+        cands.extend([a, b])
+    vals = [f(x) for x in cands]
+    return cands[int(np.argmin(vals))]
+
+
+def _feasible_rows(fam: Family, T: np.ndarray, k: np.ndarray) -> np.ndarray:
+    """Row-wise constraint check of multiples ``k`` (c, n) at cycles ``T`` (c,)."""
+    dv, dw, du = _loads(fam)
+    ok = np.ones(T.size, dtype=bool)
+    if math.isfinite(fam.capacity_volume):
+        ok &= (k @ dv) * T <= fam.capacity_volume * (1 + 1e-12)
+    if math.isfinite(fam.capacity_weight):
+        ok &= (k @ dw) * T <= fam.capacity_weight * (1 + 1e-12)
+    if fam.min_order_value > 0:
+        ok &= ((k == 1) @ du) * T >= fam.min_order_value * (1 - 1e-12)
+    ok &= np.all(T[:, None] * k <= fam.max_interval[None, :] * (1 + 1e-12), axis=1)
+    return ok
+
+
+@dataclass(frozen=True)
+class _Lagrange:
+    bound: np.ndarray  # (c,) best Lagrangian bound per candidate
+    reduced_cost: np.ndarray  # (c, n, K) at the multipliers of the best bound
+    incumbent: tuple | None  # (candidate index, multiples) of the best feasible Lagrangian solution
+    incumbent_cost: float
+    iterations: int
+
+
+def _lagrangian(fam: Family, T: np.ndarray, cost: np.ndarray, kvals: np.ndarray, ub: float) -> _Lagrange:
+    """Lagrangian bounds per candidate: capacity and minimum value constraints priced by multipliers >= 0.
+
+    ``L_c(lam) = S/T_c + sum_i min_k [cost_cik + sum_j lam_j a_jcik] - sum_j lam_j b_j`` is a lower bound
+    on every policy with cycle ``T_c`` for any ``lam >= 0`` (weak duality); the multipliers are chosen by
+    coordinate ascent (bisection on each multiplier's subgradient), for all candidates at once. A
+    candidate leaves the computation as soon as one of its bounds exceeds the incumbent.
+    """
+    dv, dw, du = _loads(fam)
+    S = fam.major_cost
+    # constraint j: coefficient a_jcik = T_c * item_j[i] * kpat_j[k]; "sum a x <= b"
+    cons: list[tuple[np.ndarray, np.ndarray, float]] = []
+    kf = kvals.astype(float)
+    if math.isfinite(fam.capacity_volume):
+        cons.append((dv, kf, fam.capacity_volume))
+    if math.isfinite(fam.capacity_weight):
+        cons.append((dw, kf, fam.capacity_weight))
+    if fam.min_order_value > 0:
+        cons.append((-du, (kvals == 1).astype(float), -fam.min_order_value))
+    c = T.size
+    base = S / T + np.min(cost, axis=2).sum(axis=1)
+    if not cons:
+        return _Lagrange(base, cost, None, math.inf, 0)
+    m = len(cons)
+    rhs = np.array([b for _, _, b in cons])
+    state = {"best_L": base.copy(), "best_lam": np.zeros((c, m)), "inc": None, "inc_cost": math.inf,
+             "evals": 0}
+
+    def reduced(rows: np.ndarray, lam: np.ndarray) -> np.ndarray:
+        rc = cost[rows].copy()
+        for j, (item, kpat, _) in enumerate(cons):
+            rc += (lam[:, j] * T[rows])[:, None, None] * item[None, :, None] * kpat[None, None, :]
+        return rc
+
+    def evaluate(rows: np.ndarray, lam: np.ndarray) -> np.ndarray:
+        """Bound and subgradient on the given rows; records best bounds and feasible solutions."""
+        rc = reduced(rows, lam)
+        km = np.argmin(rc, axis=2)
+        L = S / T[rows] + np.min(rc, axis=2).sum(axis=1) - lam @ rhs
+        g = np.empty((rows.size, m))
+        for j, (item, kpat, b) in enumerate(cons):
+            g[:, j] = (kpat[km] @ item) * T[rows] - b
+        better = L > state["best_L"][rows]
+        state["best_L"][rows[better]] = L[better]
+        state["best_lam"][rows[better]] = lam[better]
+        feas = np.all(g <= 1e-12 * (1.0 + np.abs(rhs))[None, :], axis=1)
+        if np.any(feas):
+            fr = rows[feas]
+            pc = S / T[fr] + np.take_along_axis(cost[fr], km[feas][:, :, None], axis=2)[:, :, 0].sum(axis=1)
+            j = int(np.argmin(pc))
+            if pc[j] < state["inc_cost"]:
+                state["inc_cost"] = float(pc[j])
+                state["inc"] = (int(fr[j]), kvals[km[feas][j]].astype(np.int64))
+        state["evals"] += 1
+        return g
+
+    def alive() -> np.ndarray:
+        return state["best_L"] <= min(ub, state["inc_cost"]) * (1 + 1e-9)
+
+    # coordinate ascent: along each multiplier the dual is concave with a decreasing subgradient g_j, so its
+    # maximiser is where g_j changes sign, found by bisection on log(lambda_j)
+    scale = np.max(np.where(np.isfinite(cost), cost, 0.0), axis=(1, 2)) * cost.shape[1] + 1.0
+    lam = np.zeros((c, m))
+    for _sweep in range(LAGRANGE_SWEEPS if m > 1 else 1):
+        for j in range(m):
+            item, kpat, _ = cons[j]
+            lam[:, j] = 0.0
+            rows = np.nonzero(alive())[0]
+            if rows.size == 0:
+                break
+            g0 = evaluate(rows, lam[rows])[:, j]
+            rows = rows[g0 > 0]
+            span = T * (np.abs(item).max() * np.abs(kpat).max()) + 1e-300
+            hi = np.log(scale / span) + 5.0
+            lo = hi - 60.0
+            for _ in range(LAGRANGE_BISECT):
+                rows = rows[alive()[rows]]
+                if rows.size == 0:
+                    break
+                mid = 0.5 * (lo[rows] + hi[rows])
+                trial = lam[rows].copy()
+                trial[:, j] = np.exp(mid)
+                pos = evaluate(rows, trial)[:, j] > 0
+                lo[rows] = np.where(pos, mid, lo[rows])
+                hi[rows] = np.where(pos, hi[rows], mid)
+            if rows.size:
+                lam[rows, j] = np.exp(hi[rows])
+                evaluate(rows, lam[rows])
+    best_L, best_lam, inc = state["best_L"], state["best_lam"], state["inc"]
+    rc = reduced(np.arange(c), best_lam)
+    return _Lagrange(best_L, rc, inc, state["inc_cost"], state["evals"])
+
+
+# --------------------------------------------------------------------------- the model
+def build_model(S: float, T: np.ndarray, index: list, cost: dict, load_v: dict, load_w: dict, val1: dict,
+                fam: Family):
+    """The pyomo model over kept candidates.
+
+    Sets: ``C`` candidates, ``X`` (c, i, k) triples. Parameters: ``T[c]``, ``cost[c,i,k]``. Variables:
+    ``y[c]`` (the base cycle), ``x[c,i,k]`` (item i ordered every k cycles under c). Objective: major cost
+    ``S/T[c] y[c]`` plus item costs. Constraints: one cycle; one multiple per item under the chosen cycle;
+    capacity by volume and by weight; minimum order value (items with k = 1).
+    """
+    import pyomo.environ as pyo
+
+    m = pyo.ConcreteModel(name="grouping")
+    C = list(range(T.size))
+    items = sorted({i for (_, i, _) in index})
+    m.C = pyo.Set(initialize=C)
+    m.X = pyo.Set(initialize=index, dimen=3)
+    m.CI = pyo.Set(initialize=[(c, i) for c in C for i in items], dimen=2)
+    m.T = pyo.Param(m.C, initialize={c: float(T[c]) for c in C})
+    m.cost = pyo.Param(m.X, initialize=cost)
+    m.y = pyo.Var(m.C, domain=pyo.Binary)
+    m.x = pyo.Var(m.X, domain=pyo.Binary)
+    by_ci: dict = {}
+    by_c: dict = {c: [] for c in C}
+    for t in index:
+        by_ci.setdefault((t[0], t[1]), []).append(t)
+        by_c[t[0]].append(t)
+
+    def objective(m):
+        return sum(S / m.T[c] * m.y[c] for c in m.C) + sum(m.cost[t] * m.x[t] for t in m.X)
+
+    m.objective = pyo.Objective(rule=objective, sense=pyo.minimize)
+
+    def one_cycle(m):
+        return sum(m.y[c] for c in m.C) == 1
+
+    m.one_cycle = pyo.Constraint(rule=one_cycle)
+
+    def one_multiple(m, c, i):
+        return sum(m.x[t] for t in by_ci[(c, i)]) == m.y[c]
+
+    m.one_multiple = pyo.Constraint(m.CI, rule=one_multiple)
+
+    if math.isfinite(fam.capacity_volume):
+        def capacity_volume(m, c):
+            return sum(load_v[t] * m.x[t] for t in by_c[c]) <= fam.capacity_volume * m.y[c]
+        m.capacity_volume = pyo.Constraint(m.C, rule=capacity_volume)
+    if math.isfinite(fam.capacity_weight):
+        def capacity_weight(m, c):
+            return sum(load_w[t] * m.x[t] for t in by_c[c]) <= fam.capacity_weight * m.y[c]
+        m.capacity_weight = pyo.Constraint(m.C, rule=capacity_weight)
+    if fam.min_order_value > 0:
+        def min_order_value(m, c):
+            return sum(val1[t] * m.x[t] for t in by_c[c] if t[2] == 1) >= fam.min_order_value * m.y[c]
+        m.min_order_value = pyo.Constraint(m.C, rule=min_order_value)
+    # shelf life: (c, i, k) with k T_c > L_i are not generated (see module notes), checked after the solve
+    return m
+
+
+def _solve(m, time_limit: float, mip_gap: float, solver: str, warm: bool = False):
+    """Run the solver; returns (termination name, objective, bound, loaded?)."""
+    if solver != "appsi_highs":
+        raise RuntimeError(f"unknown solver {solver!r} (only 'appsi_highs' is wired in)")
+    from pyomo.contrib.appsi.solvers import Highs
+
+    opt = Highs()
+    if not opt.available():
+        raise RuntimeError("HiGHS (highspy) is not available to pyomo")
+    opt.config.load_solution = False
+    opt.config.time_limit = float(time_limit)
+    opt.config.mip_gap = float(mip_gap)
+    opt.config.warmstart = bool(warm)
+    res = opt.solve(m)
+    tc = res.termination_condition.name
+    has = res.best_feasible_objective is not None
+    if has:
+        res.solution_loader.load_vars()
+    bound = res.best_objective_bound
+    return tc, res.best_feasible_objective, (float(bound) if bound is not None else math.nan), has
+
+
+def solve_family(
+    fam: Family,
+    *,
+    k_max: int = K_MAX,
+    powers_of_two: bool = False,
+    grid_ratio: float = GRID_RATIO,
+    time_limit: float = TIME_LIMIT,
+    mip_gap: float = MIP_GAP,
+    solver: str = "appsi_highs",
+) -> FamilySolution:
+    """Choose the base cycle and the multiples of one family by the mixed-integer model.
+
+    Parameters
+    ----------
+    fam : Family
+        From :func:`make_family`.
+    k_max : int
+        Largest multiple.
+    powers_of_two : bool
+        Restrict multiples to 1, 2, 4, ... (nested schedules).
+    grid_ratio : float
+        Ratio ``rho > 1`` between grid candidates (the tolerance, see the module notes).
+    time_limit : float
+        Seconds for the solver; at the limit the best solution and its gap are returned.
+    mip_gap : float
+        Relative gap under which the solver's answer counts as proven optimal.
+    solver : str
+        ``"appsi_highs"``.
+
+    Returns
+    -------
+    FamilySolution
+
+    Notes
+    -----
+    ``min sum_c (S / T_c) y_c + sum_{c,i,k} cost_cik x_cik`` subject to ``sum_c y_c = 1``,
+    ``sum_k x_cik = y_c``, ``sum_{i,k} D_i v_i k T_c x_cik <= C_v y_c`` (and weight),
+    ``sum_i D_i u_i T_c x_ci1 >= M y_c``, ``x_cik = 0`` when ``k T_c > L_i``;
+    ``cost_cik = s_i / (k T_c) + h_i D_i k T_c / 2 + safety/backorder cost(k T_c)``.
+
+    References
+    ----------
+    Goyal, S. K. (1974). Determination of optimum packaging frequency of items jointly replenished.
+    Management Science 21(4), 436-443.
+    Kaspi, M., Rosenblatt, M. J. (1991). On the economic ordering quantity for jointly replenished items.
+    International Journal of Production Research 29(1), 107-114 (the fallback).
+
+    Examples
+    --------
+    >>> f = make_family(600.0, [120.0, 840.0, 300.0], [160.0, 20.0, 50.0], [1.0, 1.0, 1.0])
+    >>> r = solve_family(f)
+    >>> r.status, r.multiples.tolist(), round(r.total_cost, 4)
+    ('optimal', [1, 3, 1], 837.8544)
+    """
+    t_start = time.perf_counter()
+    if not (grid_ratio > 1.0):
+        raise ValueError(f"grid_ratio must be > 1, got {grid_ratio!r}")
+    if int(k_max) < 1:
+        raise ValueError(f"k_max must be >= 1, got {k_max!r}")
+    ks = _k_set(int(k_max), powers_of_two)
+    S = fam.major_cost
+    s = fam.minor_cost
+    H = fam.holding_cost * fam.annual_demand
+    n = s.size
+    rnd = joint.rand(S, s, H)
+    ex = joint.exact_cyclic(S, s, H)
+    t_lo, t_hi, _ = _feasible_range(fam)
+
+    def finish(status, message, T, k, cand_cost, bound, gap, cands, kept, nvar, tol_ok, extra=None):
+        k = np.asarray(k, dtype=np.int64)
+        c, z, sig = _policy_cost(fam, T, k)
+        feas, bind, viol = check_policy(fam, T, k)
+        if viol and status in ("optimal", "time_limit"):
+            status, message = "fallback", "solver answer failed the independent check: " + "; ".join(viol)
+        oupt = fam.annual_demand * (T * k + fam.lead_time) + z * sig
+        return FamilySolution(
+            status=status, message=message, cycle=float(T), multiples=k, order_up_to=oupt, safety_factor=z,
+            item_cost=c, major_cost_rate=S / T, total_cost=S / T + float(c.sum()), candidate_cost=cand_cost,
+            bound=bound, gap=gap, binding=bind, feasible=feas, candidates=cands, candidates_kept=kept,
+            variables=nvar, grid_ratio=grid_ratio, tolerance_proven=tol_ok,
+            seconds=time.perf_counter() - t_start, extra=extra or {},
+        )
+
+    def rand_fallback(status, message):
+        T = rnd.cycle
+        k = np.minimum(rnd.multiples, ks.max())
+        if powers_of_two:
+            k = 2 ** np.floor(np.log2(k)).astype(np.int64)
+        if t_lo <= t_hi:  # pull into the feasible range and repair so the fallback respects the constraints
+            T = min(max(T, t_lo), t_hi)
+            k = _repair(fam, np.array([T]), k[None, :], ks)[0]
+            feas, _, _ = check_policy(fam, T, k)
+            if not feas:
+                k = np.ones(n, dtype=np.int64)
+        c, _, _ = _policy_cost(fam, T, k)
+        cost = S / T + float(c.sum())
+        return finish(status, message, T, k, cost, math.nan, math.nan, 0, 0, 0, False)
+
+    if t_lo > t_hi * (1 + 1e-12):
+        _, _, why = _feasible_range(fam)
+        msg = (f"no base cycle meets the constraints ({', '.join(why)}): the minimum order value needs "
+               f"T >= {t_lo:.6g} years but capacity/shelf life allow at most {t_hi:.6g}; "
+               "the unconstrained RAND policy is shown and it violates them")
+        T, k = rnd.cycle, rnd.multiples
+        c, _, _ = _policy_cost(fam, T, k)
+        return finish("infeasible", msg, T, k, S / T + float(c.sum()), math.nan, math.nan, 0, 0, 0, False)
+
+    # ---- an upper bound from a few heuristic points, then the proven range
+    probe = np.array([x for x in (ex.cycle, rnd.cycle, t_lo, t_hi) if math.isfinite(x) and x > 0])
+    probe = np.unique(np.clip(probe, max(t_lo, 1e-12), t_hi))
+    cost_p = _item_costs(fam, probe, ks)
+    k_unc_p = ks[np.argmin(cost_p, axis=2)]
+    k_p = _repair(fam, probe, k_unc_p, ks)
+    ub = math.inf
+    for j in range(probe.size):
+        c, _, _ = _policy_cost(fam, float(probe[j]), k_p[j])
+        if check_policy(fam, float(probe[j]), k_p[j])[0]:
+            ub = min(ub, S / probe[j] + float(c.sum()))
+    eoq = float(np.sum(np.sqrt(2.0 * s * H)))
+    r_lo = S / (ub - eoq) if ub > eoq else t_lo
+    r_lo = max(r_lo * (1 - 1e-9), t_lo)
+    r_hi = min(2.0 * ub / float(H.sum()) * (1 + 1e-9), t_hi)
+    if not math.isfinite(ub) or not (r_lo <= r_hi):
+        return rand_fallback("fallback", "no feasible starting policy for the candidate range; RAND used")
+    ratio = float(grid_ratio)
+    n_grid = int(math.ceil(math.log(r_hi / r_lo) / math.log(ratio))) + 1 if r_hi > r_lo else 1
+    if n_grid > MAX_GRID:
+        ratio = (r_hi / r_lo) ** (1.0 / (MAX_GRID - 1))
+        n_grid = MAX_GRID
+    grid = r_lo * ratio ** np.arange(n_grid)
+    grid = grid[grid <= r_hi * (1 + 1e-12)]
+    # special points: exact/RAND cycles, range ends, shelf-life and capacity breakpoints
+    special = [ex.cycle, rnd.cycle, r_lo, r_hi]
+    if np.any(np.isfinite(fam.max_interval)):
+        L = fam.max_interval[np.isfinite(fam.max_interval)]
+        special.extend((L[:, None] / ks[None, :]).ravel().tolist())
+    dv, dw, du = _loads(fam)
+    k_grid = joint.optimal_multiples(grid, s, H, k_max=int(ks.max()))
+    if powers_of_two:
+        k_grid = 2 ** np.floor(np.log2(k_grid)).astype(np.int64)
+    for load, cap in ((dv, fam.capacity_volume), (dw, fam.capacity_weight)):
+        if math.isfinite(cap):
+            lk = k_grid @ load
+            special.extend((cap / lk[lk > 0]).tolist())
+    if fam.min_order_value > 0:
+        v1 = (k_grid == 1) @ du
+        special.extend((fam.min_order_value / v1[v1 > 0]).tolist())
+    special = np.asarray(special, dtype=float)
+    special = special[(special >= r_lo * (1 - 1e-12)) & (special <= r_hi * (1 + 1e-12))]
+    T = np.unique(np.concatenate((grid, special)))
+    n_cand = T.size
+
+    # ---- costs, dominance, Lagrangian bounds, pruning
+    cost = _item_costs(fam, T, ks)  # (c, n, K)
+    kbest = np.argmin(cost, axis=2)  # first minimiser = the unconstrained best multiple
+    K_use = int(kbest.max()) + 1
+    cost = cost[:, :, :K_use]
+    # multiples above the unconstrained best are dominated (module notes)
+    cost = np.where(np.arange(K_use)[None, None, :] <= kbest[:, :, None], cost, np.inf)
+    k_heur = _repair(fam, T, ks[kbest], ks)
+    kidx = np.searchsorted(ks, k_heur)
+    ub_c = S / T + np.take_along_axis(cost, kidx[:, :, None], axis=2)[:, :, 0].sum(axis=1)
+    feas_c = np.isfinite(ub_c) & _feasible_rows(fam, T, k_heur)
+    inc = None
+    if np.any(feas_c):
+        j = int(np.argmin(np.where(feas_c, ub_c, np.inf)))
+        if ub_c[j] <= ub:
+            ub, inc = float(ub_c[j]), (j, k_heur[j].copy())
+    lag = _lagrangian(fam, T, cost, ks[:K_use], ub)
+    if lag.incumbent is not None and lag.incumbent_cost < ub:
+        ub, inc = lag.incumbent_cost, lag.incumbent
+    slack = ub * (1 + 1e-9) + 1e-12
+    keep = np.isfinite(lag.bound) & (lag.bound <= slack)
+    # reduced-cost fixing: x_cik = 1 would force the bound above the incumbent
+    rc = lag.reduced_cost
+    allowed = np.isfinite(cost) & (lag.bound[:, None, None] + rc - np.min(rc, axis=2)[:, :, None] <= slack)
+    allowed &= keep[:, None, None]
+    if inc is not None:  # the incumbent always stays available
+        keep[inc[0]] = True
+        allowed[inc[0], np.arange(n), np.searchsorted(ks, inc[1])] = True
+    kept_idx = np.nonzero(keep)[0]
+    Tk = T[kept_idx]
+    cost_k = cost[kept_idx]
+    allowed = allowed[kept_idx]
+    cc, ii, kk = np.nonzero(allowed)
+    kv = ks[kk]
+    index = list(zip(cc.tolist(), ii.tolist(), kv.tolist(), strict=True))
+    vals = cost_k[cc, ii, kk]
+    costd = dict(zip(index, vals.tolist(), strict=True))
+    tck = Tk[cc] * kv
+    load_v = dict(zip(index, (dv[ii] * tck).tolist(), strict=True))
+    load_w = dict(zip(index, (dw[ii] * tck).tolist(), strict=True))
+    val1 = dict(zip(index, (du[ii] * Tk[cc]).tolist(), strict=True))
+    start = None
+    if inc is not None:
+        c_inc = int(np.searchsorted(kept_idx, inc[0]))
+        start = (c_inc, {(c_inc, i, int(inc[1][i])) for i in range(n)})
+    nvar = len(index) + Tk.size
+    both = (math.isfinite(fam.capacity_volume) or math.isfinite(fam.capacity_weight)
+            or np.any(np.isfinite(fam.max_interval))) and fam.min_order_value > 0
+    tol_ok = (not both) and fam.mode != "fill_rate" and ratio == grid_ratio
+    info = {"upper_bound_heuristic": ub, "range": (r_lo, r_hi), "lagrange_iterations": lag.iterations,
+            "lagrange_bound": float(np.min(lag.bound))}
+
+    try:
+        m = build_model(S, Tk, index, costd, load_v, load_w, val1, fam)
+        if start is not None:
+            for c in range(Tk.size):
+                m.y[c].value = 1.0 if c == start[0] else 0.0
+            for tpl in index:
+                m.x[tpl].value = 1.0 if tpl in start[1] else 0.0
+        tc, obj, bound, has = _solve(m, time_limit, mip_gap, solver, warm=start is not None)
+    except Exception as exc:  # noqa: BLE001 - any solver failure leads to the reported fallback
+        return rand_fallback("fallback", f"solver failed ({type(exc).__name__}: {exc}); RAND heuristic used, "
+                             "not proven optimal")
+    if not has:
+        return rand_fallback("fallback", f"solver ended '{tc}' without a solution; RAND heuristic used, "
+                             "not proven optimal")
+    ysel = [c for c in range(Tk.size) if (m.y[c].value or 0.0) > 0.5]
+    if len(ysel) != 1:
+        return rand_fallback("fallback", f"solver returned {len(ysel)} selected cycles; RAND heuristic used")
+    c0 = ysel[0]
+    k_sol = np.zeros(n, dtype=np.int64)
+    for (c, i, k) in index:
+        if c == c0 and (m.x[(c, i, k)].value or 0.0) > 0.5:
+            k_sol[i] = k
+    if np.any(k_sol == 0):
+        return rand_fallback("fallback", "solver returned an item without a multiple; RAND heuristic used")
+    cand_cost = float(obj)
+    gap = (cand_cost - bound) / abs(cand_cost) if math.isfinite(bound) and cand_cost != 0 else math.nan
+    T_fin = _polish(fam, float(Tk[c0]), k_sol, math.inf)
+    if tc == "optimal" and (math.isnan(gap) or gap <= max(mip_gap, 1e-9) * 1.0001):
+        status = "optimal"
+        msg = (f"proven optimal over {Tk.size} kept of {n_cand} candidate cycles (gap {gap:.2e}); "
+               f"T re-optimised for the chosen multiples")
+    elif tc in ("optimal", "maxTimeLimit", "maxIterations", "interrupted", "objectiveLimit"):
+        status = "time_limit"
+        msg = f"solver stopped '{tc}' with relative gap {gap:.3g}: best solution found, not proven optimal"
+    else:
+        return rand_fallback("fallback", f"solver ended '{tc}'; RAND heuristic used, not proven optimal")
+    info["candidate_cycle"] = float(Tk[c0])
+    return finish(status, msg, T_fin, k_sol, cand_cost, bound, gap, n_cand, int(Tk.size), nvar, tol_ok, info)
