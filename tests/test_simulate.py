@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
+from optimiser import sim_kernel as _k
 from optimiser.simulate import (
     DEMAND_COMPOUND,
     DEMAND_NORMAL_DAILY,
@@ -234,8 +235,8 @@ def _axsater_costs(rows, horizon, replications, seed):
     b = np.array([row[1] for row in rows], dtype=float)
     sim = simulate_network_arrays(np.array([-1] + [0] * n_st), rop, oq,
                                   demand_mean=np.array([0.0] + [0.1] * n_st), lead_mean=1.0,
-                                  horizon_days=horizon, warmup_days=100.0, replications=replications, seed=seed,
-                                  partial_shipments=False)
+                                  horizon_days=horizon, warmup_days=100.0, replications=replications,
+                                  seed=seed, partial_shipments=False)
     cost = sim.on_hand.sum(axis=2) + b * sim.backorders[:, :, 1:].sum(axis=2)  # (K, n)
     return cost.mean(axis=0), confidence_half_width(cost)
 
@@ -245,7 +246,8 @@ def test_axsater_1993_batch_problems_default_run():
     mean, hw = _axsater_costs(AXSATER_1993, 40_000.0, 6, seed=2024)
     exact = np.array([row[4][2] for row in AXSATER_1993])
     assert np.all(hw < 0.1)
-    bad = [(row[0], row[4], round(m, 3), round(h, 3)) for row, m, h in zip(AXSATER_1993, mean, hw, strict=True)
+    bad = [(row[0], row[4], round(m, 3), round(h, 3))
+           for row, m, h in zip(AXSATER_1993, mean, hw, strict=True)
            if not _within(m, h, row[4][2], ROUNDING)]
     assert not bad, bad
     assert np.all(np.abs(mean - exact) < 0.1)
@@ -257,7 +259,108 @@ def test_axsater_1993_batch_problems_long_run():
     must lie within the plain 95% interval widened only by the rounding of the published figures."""
     mean, hw = _axsater_costs(AXSATER_1993, 400_000.0, 10, seed=1993)
     assert np.all(hw < 0.05)
-    bad = [(row[0], row[4], round(m, 3), round(h, 3)) for row, m, h in zip(AXSATER_1993, mean, hw, strict=True)
-           if abs(m - row[4][2]) > h + ROUNDING]
+    bad = [(row[0], row[4], round(m, 3), round(h, 3))
+           for row, m, h in zip(AXSATER_1993, mean, hw, strict=True) if abs(m - row[4][2]) > h + ROUNDING]
     # one miss in 16 is what 95% intervals give now and then; more would be a real disagreement
     assert len(bad) <= 1, bad
+
+
+# ----------------------------------------------------------------------------------------------------------
+# settings: partial shipments, crossing orders, periodic review
+# ----------------------------------------------------------------------------------------------------------
+def _two_stores(partial, rop, oq, seed=8):
+    return simulate_network_arrays(np.array([-1, 0, 0]), np.array(rop), np.array(oq),
+                                   demand_mean=np.array([0.0, 1.0, 1.0]), lead_mean=np.array([4.0, 1.0, 1.0]),
+                                   n_items=1, horizon_days=20_000.0, warmup_days=100.0, replications=4,
+                                   seed=seed, partial_shipments=partial)
+
+
+def test_partial_and_whole_shipments():
+    """Warehouse batch 7 against store batches 3: stock can be short of a whole store order."""
+    part = _two_stores(True, [2, 1, 1], [7, 3, 3])
+    whole = _two_stores(False, [2, 1, 1], [7, 3, 3])
+    receipts = {k: v.raw[:, 0, 1:, _k.ST_CYCLES] for k, v in (("part", part), ("whole", whole))}
+    orders = {k: v.raw[:, 0, 1:, _k.ST_ORDERS] for k, v in (("part", part), ("whole", whole))}
+    # whole orders: one receipt per store order (up to the orders open at the start and end of measuring)
+    assert np.all(np.abs(receipts["whole"] - orders["whole"]) <= 3)
+    # partial shipments split some orders
+    assert np.all(receipts["part"] > 1.05 * orders["part"])
+    # holding back stock for whole orders: more on hand at the warehouse, longer store waits
+    assert part.mean("on_hand")[0, 0] + part.half_width("on_hand")[0, 0] < \
+        whole.mean("on_hand")[0, 0] - whole.half_width("on_hand")[0, 0]
+    assert np.all(part.mean("store_delay")[0, 1:] < whole.mean("store_delay")[0, 1:])
+
+
+def test_partial_setting_irrelevant_when_quantities_are_multiples_of_the_store_batch():
+    """Warehouse stock then always comes in whole store batches, so nothing is ever split: same runs."""
+    a = _two_stores(True, [6, 1, 1], [9, 3, 3])
+    b = _two_stores(False, [6, 1, 1], [9, 3, 3])
+    assert np.array_equal(a.raw, b.raw)
+
+
+def test_crossing_orders_palm_and_no_crossing_recursion():
+    """Base stock S (Q = 1), Poisson demand, gamma lead times.
+
+    With crossing allowed the number of outstanding orders is Poisson(lambda E[L]) whatever the lead-time
+    distribution (Palm, C., "Analysis of the Erlang traffic formula for busy-signal arrangements", Ericsson
+    Technics 5, 1938; Feeney, G. J. and Sherbrooke, C. C., "The (s-1, s) inventory policy under compound
+    Poisson demand", Management Science 12, 1966). Without crossing, arrival n is max(t_n + L_n, arrival n-1);
+    its mean delay is computed here by that recursion on independent draws and compared with the simulator's
+    mean outstanding / lambda (Little's law; IP = S so outstanding = S - on hand + backorders).
+    """
+    lam, lead, lead_sd, s_base = 2.0, 3.0, 2.5, 8
+    common = dict(demand_mean=lam, lead_mean=lead, lead_sd=lead_sd, n_items=1, horizon_days=40_000.0,
+                  warmup_days=100.0, replications=6, seed=17)
+    cross = simulate_network_arrays([-1], s_base - 1, 1, orders_cross=True, **common)
+    keep = simulate_network_arrays([-1], s_base - 1, 1, orders_cross=False, **common)
+    fill, on_hand, back = _exact_single(s_base - 1, 1, lam * lead)
+    assert _within(cross.mean("fill_rate"), cross.half_width("fill_rate"), fill).all()
+    assert _within(cross.mean("on_hand"), cross.half_width("on_hand"), on_hand).all()
+    assert _within(cross.mean("backorders"), cross.half_width("backorders"), back).all()
+    # no crossing: the recursion, on independent draws
+    rng = np.random.default_rng(99)
+    n_orders = 400_000
+    times = np.cumsum(rng.exponential(1 / lam, n_orders))
+    shape = (lead / lead_sd) ** 2
+    arrive = times + rng.gamma(shape, lead_sd**2 / lead, n_orders)
+    arrive = np.maximum.accumulate(arrive)
+    mean_delay = float(np.mean((arrive - times)[1000:]))
+    outstanding = (s_base - keep.on_hand + keep.backorders)[:, 0, 0] / lam  # per replication
+    assert abs(outstanding.mean() - mean_delay) <= SLACK_SIGMA * confidence_half_width(outstanding) + 0.02
+    assert mean_delay > lead + 0.5  # the check separates the two rules
+    assert keep.mean("backorders")[0, 0] > cross.mean("backorders")[0, 0] + 0.1
+
+
+def test_periodic_order_up_to_matches_exact():
+    """Review every T days, order up to S, constant lead time L, Poisson demand. For a time a uniform U in
+    [0, T) after the last review whose order has arrived, net stock = S - D(L + U) (Hadley & Whitin, Analysis
+    of Inventory Systems, 1963, periodic review; formula from memory). Fill rate = P(D(L + U) <= S - 1)
+    (Poisson arrivals see time averages); orders per day = (1 - exp(-lambda T)) / T."""
+    lam, lead, period, s_up = 1.5, 2.0, 5.0, 14
+    sim = simulate_network_arrays([-1], 0, 1, demand_mean=lam, lead_mean=lead, review_period=period,
+                                  order_up_to=s_up, review_phase=0.7, n_items=1, horizon_days=50_000.0,
+                                  warmup_days=50.0, replications=6, seed=4)
+    u = (np.arange(2000) + 0.5) / 2000 * period
+    k = np.arange(200)
+    pmf = stats.poisson.pmf(k[None, :], lam * (lead + u[:, None])).mean(axis=0)
+    fill = pmf[:s_up].sum()
+    on_hand = np.sum(np.maximum(s_up - k, 0) * pmf)
+    back = np.sum(np.maximum(k - s_up, 0) * pmf)
+    assert _within(sim.mean("fill_rate"), sim.half_width("fill_rate"), fill, 1e-4).all()
+    assert _within(sim.mean("on_hand"), sim.half_width("on_hand"), on_hand, 1e-4).all()
+    assert _within(sim.mean("backorders"), sim.half_width("backorders"), back, 1e-4).all()
+    orders = (1 - np.exp(-lam * period)) / period
+    assert _within(sim.mean("orders_per_day"), sim.half_width("orders_per_day"), orders, 1e-4).all()
+
+
+def test_trace_records_levels():
+    sim = simulate_network_arrays([-1, 0], [3, 1], [6, 2], demand_mean=[0.0, 1.0], lead_mean=[2.0, 1.0],
+                                  n_items=2, horizon_days=5_000.0, warmup_days=100.0, replications=2, seed=6,
+                                  trace_items=[1], trace_step_days=1.0)
+    assert sim.trace_on_hand.shape == (1, 4901, 2)
+    assert sim.trace_times[0] == 100.0 and sim.trace_times[-1] == 5000.0
+    oh = sim.trace_on_hand[0]
+    assert np.all(oh >= 0) and np.all(oh == np.round(oh))
+    # daily samples of a stationary process average to its time average (replication 1 of item 1)
+    assert np.allclose(oh.mean(axis=0), sim.on_hand[0, 1], rtol=0.03, atol=0.03)
+    assert np.allclose(sim.trace_backorders[0].mean(axis=0), sim.backorders[0, 1], rtol=0.05, atol=0.02)
