@@ -172,6 +172,8 @@ ITEMS_COLUMNS = [
     _num("volume", required=False),
     _num("weight", required=False),
     _Col("distribution", "choice", required=False, default="", choices=DISTRIBUTIONS),
+    _num("line_cost", required=False),  # joint replenishment: overrides the supplier's line_cost
+    _num("shelf_life_days", required=False, strict=True),  # joint replenishment: longest order interval
 ]
 DEMAND_COLUMNS = [
     _Col("site", "id"),

@@ -87,7 +87,8 @@ def build_itemsites(case: Case) -> pd.DataFrame:
       every site above it.
     * ``lead_days``: the supplier's lead time at a site with no upstream, the site's transit time below.
     * ``annual_demand`` = (own daily mean + daily means of every stocked site below) × ``days_per_year``.
-    * ``order_cost``: supplier ``order_cost + line_cost`` at a root site, the site's ``delivery_cost`` below.
+    * ``order_cost``: supplier ``order_cost + line_cost`` at a root site (the item's ``line_cost`` in
+      ``items.csv`` overrides the supplier's), the site's ``delivery_cost`` below.
     * ``holding_cost``: ``items.holding_cost`` or ``holding_rate × unit_cost``.
     * ``backorder_cost``, ``order_quantity``, ``pack_size``, ``target``: ``stocking.csv`` overrides
       ``items.csv`` overrides ``case.toml``; targets apply only in the service modes.
@@ -112,6 +113,7 @@ def build_itemsites(case: Case) -> pd.DataFrame:
                 "pack_size": "item_pack",
                 "backorder_cost": "item_backorder",
                 "distribution": "item_distribution",
+                "line_cost": "item_line_cost",
             }
         ),
         on="item",
@@ -153,7 +155,7 @@ def build_itemsites(case: Case) -> pd.DataFrame:
     mean, var = through_demand(out)
     out["annual_demand"] = mean * settings.days_per_year
     out["order_cost"] = np.where(
-        root, frame["order_cost"] + frame["line_cost"], frame["delivery_cost"]
+        root, frame["order_cost"] + frame["item_line_cost"].fillna(frame["line_cost"]), frame["delivery_cost"]
     ).astype(float)
     holding = frame["holding_cost"].to_numpy(dtype=float)
     out["holding_cost"] = np.where(np.isnan(holding), settings.holding_rate * frame["unit_cost"], holding)
