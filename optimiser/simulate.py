@@ -502,6 +502,7 @@ PLANNED_COLUMNS = {
 KPI_COLUMNS = list(PLANNED_COLUMNS)
 DEMAND_MODELS = ("auto", "poisson", "normal_daily")
 PLANNED_SLACK = 1e-9  # a planned figure equal to an interval end counts as inside
+POISSON_DISPERSION_TOL = 1e-3  # "auto" demand: variance up to (1 + this) x mean counts as Poisson
 
 
 @dataclass(frozen=True)
@@ -653,7 +654,7 @@ def run_simulation(
     dmean = grid(table["daily_mean"].fillna(0.0))
     dsd = grid(table["daily_sd"].fillna(0.0))
     if demand_model == "auto":
-        model = np.where(dsd * dsd > dmean * (1.0 + 1e-9), DEMAND_COMPOUND, DEMAND_POISSON)
+        model = np.where(dsd * dsd > dmean * (1.0 + POISSON_DISPERSION_TOL), DEMAND_COMPOUND, DEMAND_POISSON)
     elif demand_model == "poisson":
         model = np.full((n, s_count), DEMAND_POISSON)
     else:

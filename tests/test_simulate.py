@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 import pytest
 from scipy import stats
 
@@ -364,3 +365,134 @@ def test_trace_records_levels():
     # daily samples of a stationary process average to its time average (replication 1 of item 1)
     assert np.allclose(oh.mean(axis=0), sim.on_hand[0, 1], rtol=0.03, atol=0.03)
     assert np.allclose(sim.trace_backorders[0].mean(axis=0), sim.backorders[0, 1], rtol=0.05, atol=0.02)
+
+
+# ----------------------------------------------------------------------------------------------------------
+# application layer: case -> item-site table -> simulate_policies / rqnet simulate
+# ----------------------------------------------------------------------------------------------------------
+ONE_SITE = {
+    "sites.csv": """\
+        site,upstream,transit_days,transit_days_sd,delivery_cost
+        wh,,,,
+        """,
+    "demand.csv": """\
+        site,item,daily_mean,daily_sd
+        wh,c,0.2,0.4472136
+        """,
+}
+
+
+def _policies_file(folder, rows):
+    path = folder / "pol.csv"
+    lines = ["site,item,reorder_point,order_quantity" + ("".join(f",{k}" for k in rows[0][4]) if rows[0][4]
+                                                       else "")]
+    for site, item, r, q, extra in rows:
+        lines.append(f"{site},{item},{r},{q}" + "".join(f",{v}" for v in extra.values()))
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
+
+
+def test_simulate_policies_one_site_matches_exact_and_costs(case_writer):
+    """Item c: Poisson 0.2 a day, supplier lead time 20 days (sd 0) -> LTD Poisson(4); R = 5, Q = 3. Exact
+    values as in the single-site test (Hadley & Whitin 1963). Costs follow their definitions: holding cost
+    0.2 x 50 per unit-year, order cost 80, backorder cost 30 per unit short, 360 days a year."""
+    from optimiser.case import load_case
+    from optimiser.itemsites import build_itemsites
+    from optimiser.simulate import simulate_policies
+
+    case = load_case(case_writer(ONE_SITE))
+    table = build_itemsites(case)
+    fill, on_hand, _ = _exact_single(5, 3, 4.0)
+    pol = pd.DataFrame({"site": ["wh"], "item": ["c"], "reorder_point": [5.0], "order_quantity": [3.0],
+                        "fill_rate": [fill], "expected_on_hand": [on_hand + 1.0]})
+    out = simulate_policies(table, pol, case.settings, years=60, warmup_years=0.5, replications=6, seed=3)
+    row = out.iloc[0]
+    assert row["demand_model"] == "poisson"
+    assert _within(row["fill_rate"], row["fill_rate_ci"], fill)
+    assert _within(row["on_hand"], row["on_hand_ci"], on_hand)
+    assert _within(row["orders_per_year"], row["orders_per_year_ci"], 0.2 * 360 / 3, 1e-6)
+    assert np.isclose(row["ordering_cost"], row["orders_per_year"] * 80.0)
+    assert np.isclose(row["holding_cost"], row["on_hand"] * 10.0)
+    units_short = row["demand_per_year"] * (1 - row["fill_rate"])
+    assert np.isclose(row["backorder_cost"], 30.0 * units_short, rtol=0.02)
+    assert np.isclose(row["total_cost"], row["ordering_cost"] + row["holding_cost"] + row["backorder_cost"])
+    assert row["store_delay_days"] == 0.0
+    # the planned fill rate is the exact one (inside); the planned on hand is 1 unit too high (outside)
+    assert row["planned_fill_rate"] == fill
+    assert row["outside_interval"] == "on_hand"
+
+
+def test_simulate_policies_network_flows(case_writer):
+    """Warehouse wh feeding s1, s2 (conftest case): units and demand flow as the case says."""
+    from optimiser.case import load_case
+    from optimiser.itemsites import build_itemsites
+    from optimiser.simulate import run_simulation
+
+    case = load_case(case_writer())
+    table = build_itemsites(case)
+    pol = table[["site", "item"]].copy()
+    daily = table["annual_demand"].to_numpy() / case.settings.days_per_year
+    pol["order_quantity"] = np.maximum(np.round(daily * 10), 1)
+    pol["reorder_point"] = np.round(daily * (table["lead_days"].to_numpy() + 1))
+    res = run_simulation(table, pol, case.settings, years=20, warmup_years=0.5, replications=4, seed=12,
+                         trace_items=["a"])
+    out = res.table
+    assert list(out[["site", "item"]].itertuples(index=False)) == list(table[["site", "item"]]
+                                                                      .itertuples(index=False))
+    key = out.set_index(["site", "item"])
+    # customer demand keeps its mean (compound Poisson where the variance exceeds the mean)
+    assert key.loc[("s1", "a"), "demand_model"] == "compound_poisson"
+    assert np.isclose(key.loc[("s1", "a"), "demand_per_year"], 12 * 360, rtol=0.02)
+    assert np.isclose(key.loc[("s2", "c"), "demand_per_year"], 0.2 * 360, rtol=0.1)
+    # the warehouse sees what the stores order
+    assert np.isclose(key.loc[("wh", "a"), "demand_per_year"],
+                      key.loc[("s1", "a"), "demand_per_year"] + key.loc[("s2", "a"), "demand_per_year"],
+                      rtol=0.01)
+    assert key.loc[("wh", "a"), "store_delay_days"] == 0.0
+    assert (key.loc[[("s1", "a"), ("s2", "a")], "store_delay_days"] >= 0).all()
+    assert set(res.traces["site"]) == {"wh", "s1", "s2"} and set(res.traces["item"]) == {"a"}
+    assert "planned_fill_rate" not in out and (out["outside_interval"] == "").all()
+
+
+def test_rqnet_simulate_command(case_writer, tmp_path):
+    from optimiser.cli import main
+
+    folder = case_writer()
+    pol = _policies_file(tmp_path, [("wh", "a", 200, 150, {}), ("wh", "b", 40, 30, {}), ("wh", "c", 5, 3, {}),
+                                    ("s1", "a", 30, 40, {}), ("s1", "b", 8, 10, {}), ("s2", "a", 30, 30, {}),
+                                    ("s2", "c", 1, 2, {})])
+    out = tmp_path / "sim"
+    args = ["simulate", str(folder), "--policies", str(pol), "--out", str(out), "--years", "2",
+            "--replications", "3", "--seed", "5", "-q"]
+    assert main(args) == 0
+    first = (out / "simulation.csv").read_text()
+    frame = pd.read_csv(out / "simulation.csv")
+    assert len(frame) == 7
+    for col in ("site", "item", "fill_rate", "fill_rate_ci", "on_hand", "on_hand_ci", "backorders",
+                "backorders_ci", "orders_per_year", "outside_interval"):
+        assert col in frame.columns
+    assert (out / "summary.json").exists() and list(out.glob("trace_*.png"))
+    assert main(args) == 0  # replaces its own earlier output; same seed, same numbers
+    assert (out / "simulation.csv").read_text() == first
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".sim.")]
+
+
+def test_rqnet_simulate_refuses_bad_policies_and_foreign_folders(case_writer, tmp_path):
+    from optimiser.cli import main
+
+    folder = case_writer()
+    rows = [("wh", "a", 200, 150, {}), ("wh", "b", 40, 30, {}), ("wh", "c", 5, 0.2, {}),
+            ("s1", "a", 30, 40, {}), ("s1", "b", 8, 10, {}), ("s2", "a", 30, 30, {}), ("s2", "c", 1, 2, {})]
+    out = tmp_path / "sim"
+    args = ["simulate", str(folder), "--policies", str(_policies_file(tmp_path, rows)), "--out", str(out),
+            "--years", "1", "--replications", "2", "-q"]
+    assert main(args) == 2  # Q = 0.2 is no whole unit
+    assert not out.exists()
+    rows[2] = ("wh", "c", 5, 3, {})
+    foreign = tmp_path / "mine"
+    foreign.mkdir()
+    (foreign / "notes.txt").write_text("keep me")
+    args = ["simulate", str(folder), "--policies", str(_policies_file(tmp_path, rows)), "--out", str(foreign),
+            "--years", "1", "--replications", "2", "-q"]
+    assert main(args) == 2
+    assert (foreign / "notes.txt").read_text() == "keep me"
