@@ -51,6 +51,8 @@ from models.loss import (
     normal_loss2,
 )
 
+_INV_SQRT2PI = 1.0 / np.sqrt(2.0 * np.pi)
+
 # ------------------------------------------------------------------------------------------------ notes
 NOTE_ZERO_DEMAND = 1
 NOTE_NO_INTERIOR_OPTIMUM = 2
@@ -390,53 +392,157 @@ def _objective(R, Q, mu, sd, D, A, h, b, discrete, mode, basis, c: _Counts | Non
 
 
 # ================================================================================ cost mode, per unit
-def _hw_normal(mu, sd, D, A, h, b):
-    """Hadley-Whitin iteration on G(Q, R) with R >= 0, σ > 0. Returns (Q, R, it, conv, flag)."""
+def _hw_normal(mu, sd, D, A, h, b, accelerate=True):
+    """Hadley-Whitin iteration on G(Q, R) with R >= 0, σ > 0. Returns (Q, R, it, conv, flag).
+
+    Works in standard units q = Q/σ, z = (R − μ)/σ with k = AD/σ², B = bD/σ:
+    G/σ = h(q/2 + z) + (k + B·G(z))/q. One step maps q to z(q) (the R condition, z >= −μ/σ) and then to
+    T(q) = √(2(k + B·G(z(q)))/h) (the Q condition). Plain iteration: q ← T(q). Accelerated: a Newton step
+    on q − T(q) = 0 with T'(q) = (hq/B)/(T·φ(z)) (0 where z is held at its bound), kept inside the bracket
+    [EOQ, q_cap] that always holds the fixed point (q_cap = √(2(k + B·G(−μ/σ))/h)); the plain step or a
+    bisection replaces a Newton step that leaves the bracket.
+    """
     k = A * D / (sd * sd)
     B = b * D / sd
     z0 = -mu / sd                       # R >= 0
     n = mu.shape[0]
-    q_eoq = np.sqrt(2.0 * k / h)
+    q_eoq = np.maximum(np.sqrt(2.0 * k / h), 1e-300)
+    q_cap = np.sqrt(2.0 * (k + B * normal_loss(z0)) / h)
 
-    def z_of(q, kk, BB, hh, zz0):
+    def z_of(q, BB, hh, zz0):
         ratio = hh * q / BB
         zf = np.where(ratio < 1.0, _isf(np.minimum(ratio, 1.0)), -np.inf)
-        return np.maximum(zf, zz0)
+        return np.maximum(zf, zz0), ratio, zf < zz0
 
     q = q_eoq.copy()
     it = np.zeros(n, dtype=np.int64)
     conv = np.zeros(n, dtype=bool)
-    active = np.arange(n)
+    idx = np.arange(n)
+    kk, BB, hh, zz0, qq, lo, hi = k, B, h, z0, q.copy(), q_eoq.copy(), np.maximum(q_cap, q_eoq)
     for _ in range(HW_MAX_ITER):
-        if not active.size:
+        if not idx.size:
             break
-        qa = q[active]
-        z = z_of(qa, k[active], B[active], h[active], z0[active])
-        qn = np.sqrt(2.0 * (k[active] + B[active] * normal_loss(z)) / h[active])
-        done = np.abs(qn - qa) <= HW_TOL * qn
-        q[active] = qn
-        it[active] += 1
-        conv[active[done]] = True
-        active = active[~done]
-    if active.size:
-        # safeguard: bisection on dC/dQ = h/2 − (k + B·G(z(q)))/q² along the optimal-z path, on
-        # [q_eoq, q_cap] with q_cap = sqrt(2(k + B·G(z0))/h) (z >= z0 bounds G(z) by G(z0)).
-        ka, Ba, ha, za0 = k[active], B[active], h[active], z0[active]
-        lo = q_eoq[active].copy()
-        hi = np.sqrt(2.0 * (ka + Ba * normal_loss(za0)) / ha)
+        z, ratio, clamped = z_of(qq, BB, hh, zz0)
+        T = np.sqrt(2.0 * (kk + BB * normal_loss(z)) / hh)
+        if accelerate:
+            F = T - qq
+            lo = np.where(F >= 0, np.maximum(lo, qq), lo)
+            hi = np.where(F <= 0, np.minimum(hi, qq), hi)
+            with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
+                tp = np.where(clamped, 0.0, ratio / (T * np.exp(-0.5 * z * z) * _INV_SQRT2PI))
+                newton = qq + F / (1.0 - tp)
+            ok = (tp < 1.0) & np.isfinite(newton) & (newton >= lo) & (newton <= hi)
+            plain_ok = (T >= lo) & (T <= hi)
+            qn = np.where(ok, newton, np.where(plain_ok, T, 0.5 * (lo + hi)))
+        else:
+            qn = T
+        done = np.abs(qn - qq) <= HW_TOL * qn
+        it[idx] += 1
+        q[idx] = qn
+        conv[idx[done]] = True
+        keep = ~done
+        idx = idx[keep]
+        kk, BB, hh, zz0, qq, lo, hi = (x[keep] for x in (kk, BB, hh, zz0, qn, lo, hi))
+    if idx.size:
+        # safeguard: bisection on the sign of dG/dq = h/2 − (k + B·G(z(q)))/q² along the optimal-z path,
+        # on [EOQ, q_cap] (z >= z0 bounds G(z) by G(z0), so the derivative is >= 0 at q_cap).
+        ka, Ba, ha, za0 = k[idx], B[idx], h[idx], z0[idx]
+        lo = q_eoq[idx].copy()
+        hi = np.maximum(q_cap[idx], lo)
         for _ in range(BISECT_STEPS):
             mid = 0.5 * (lo + hi)
-            d = 0.5 * ha - (ka + Ba * normal_loss(z_of(mid, ka, Ba, ha, za0))) / (mid * mid)
+            d = 0.5 * ha - (ka + Ba * normal_loss(z_of(mid, Ba, ha, za0)[0])) / (mid * mid)
             lo = np.where(d < 0, mid, lo)
             hi = np.where(d < 0, hi, mid)
-            it[active] += 1
+            it[idx] += 1
             if np.all(hi - lo <= HW_TOL * hi):
                 break
-        q[active] = 0.5 * (lo + hi)
-        conv[active] = hi - lo <= 1e3 * HW_TOL * hi
-    z = z_of(q, k, B, h, z0)
+        q[idx] = 0.5 * (lo + hi)
+        conv[idx] = hi - lo <= 1e3 * HW_TOL * hi
+    z, ratio, clamped = z_of(q, B, h, z0)
+    if accelerate:
+        # Newton may land on a root of q = T(q) other than the smallest one (the interior local minimum
+        # of G along the path): a local maximum (T' > 1) or the root with z held at z0. Redo those items
+        # with the plain iteration, which climbs monotonically from the EOQ to the smallest root.
+        T = np.sqrt(2.0 * (k + B * normal_loss(z)) / h)
+        with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
+            tp = np.where(clamped, 0.0, ratio / (T * np.exp(-0.5 * z * z) * _INV_SQRT2PI))
+        redo = np.flatnonzero(~conv | (tp > 1.0) | clamped)
+        if redo.size:
+            Qr, _, itr, cvr, _ = _hw_normal(mu[redo], sd[redo], D[redo], A[redo], h[redo], b[redo], False)
+            q[redo] = Qr / sd[redo]
+            it[redo] += itr
+            conv[redo] = cvr
+            z = z_of(q, B, h, z0)[0]
+    # G along the optimal-z path can have a second local minimum where z is held at z0 (R = 0), at
+    # q_cap = √(2(k + B·G(z0))/h): keep whichever of the two is cheaper
+    zc = z_of(q_cap, B, h, z0)[0]
+    c1 = h * (0.5 * q + z) + (k + B * normal_loss(z)) / q
+    c2 = h * (0.5 * q_cap + zc) + (k + B * normal_loss(zc)) / q_cap
+    use_cap = c2 < c1
+    q = np.where(use_cap, q_cap, q)
+    z = np.where(use_cap, zc, z)
     flag = h * q >= B
-    return q * sd, mu + sd * z, it, conv, flag
+    R = np.where(z <= z0, 0.0, np.maximum(mu + sd * z, 0.0))
+    return q * sd, R, it, conv, flag
+
+
+@dataclass(frozen=True)
+class HadleyWhitinResult:
+    """Result of :func:`hadley_whitin` ((n,) arrays)."""
+
+    order_quantity: np.ndarray
+    reorder_point: np.ndarray
+    cost: np.ndarray
+    iterations: np.ndarray
+    converged: np.ndarray
+    no_interior_optimum: np.ndarray
+
+
+def hadley_whitin(annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost, backorder_cost, *,
+                  accelerate: bool = True) -> HadleyWhitinResult:
+    """The Hadley-Whitin iteration for normal lead-time demand (σ > 0), cost per unit short.
+
+    Parameters
+    ----------
+    annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost, backorder_cost : array_like
+        D, μ, σ (> 0), A (> 0), h, b (> 0).
+    accelerate : bool
+        False: the plain alternation Q → R → Q from the EOQ. True (used by :func:`optimise_policy`):
+        each Q update is a safeguarded Newton step on the same fixed-point equation (same answer, fewer
+        iterations).
+
+    Returns
+    -------
+    HadleyWhitinResult
+
+    Notes
+    -----
+    Minimises G(Q, R) = h(Q/2 + R − μ) + A·D/Q + b·D·n(R)/Q, n(R) = σ·G((R − μ)/σ), R >= 0, by alternating
+    Q = √(2D[A + b·n(R)]/h) and P(X > R) = hQ/(bD) from Q = EOQ until |ΔQ| <= HW_TOL·Q (at most
+    HW_MAX_ITER steps, then a bisection on dG/dQ along the optimal-R path). Where hQ >= bD the R condition
+    has no solution (no interior optimum): R is held at 0 and ``no_interior_optimum`` is set.
+
+    References
+    ----------
+    Hadley, G. & Whitin, T. M. (1963). Analysis of Inventory Systems. Prentice-Hall.
+
+    Examples
+    --------
+    >>> res = hadley_whitin(200.0, 100.0, 25.0, 50.0, 2.0, 25.0, accelerate=False)
+    >>> round(float(res.order_quantity[0]), 3), round(float(res.reorder_point[0]), 3)
+    (110.774, 142.568)
+    """
+    D, mu, sd, A, h, b = np.broadcast_arrays(*(_arr(nm, v) for nm, v in (
+        ("annual_demand", annual_demand), ("ltd_mean", ltd_mean), ("ltd_sd", ltd_sd),
+        ("order_cost", order_cost), ("holding_cost", holding_cost), ("backorder_cost", backorder_cost))))
+    for nm, v in (("annual_demand", D), ("ltd_sd", sd), ("order_cost", A), ("holding_cost", h),
+                  ("backorder_cost", b)):
+        _check(nm, v, "finite and > 0", np.isfinite(v) & (v > 0))
+    _check("ltd_mean", mu, "finite and >= 0", np.isfinite(mu) & (mu >= 0))
+    Q, R, it, conv, flag = _hw_normal(mu, sd, D, A, h, b, accelerate=accelerate)
+    cost = h * (0.5 * Q + R - mu) + A * D / Q + b * D * sd * normal_loss((R - mu) / sd) / Q
+    return HadleyWhitinResult(Q, R, cost, it, conv, flag)
 
 
 def _hw_counts(c: _Counts, D, A, h, b):
@@ -489,6 +595,13 @@ def _hw_counts(c: _Counts, D, A, h, b):
             idx = active[better]
             Q[idx], R[idx], best[idx] = Qt[better], Rt[better], ct[better]
             active = idx[Q[idx] + direction >= 1]
+    # the second local minimum with R held at 0 (see _hw_normal)
+    Qb = best_Q(allidx, np.zeros(n))
+    Rb, st = best_R(allidx, Qb)
+    cb = cost(allidx, Rb, Qb)
+    use_b = cb < best
+    Q, R = np.where(use_b, Qb, Q), np.where(use_b, Rb, R)
+    steps += st + 1
     flag = h * Q >= b * D
     return Q, R, steps, flag
 

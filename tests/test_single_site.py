@@ -20,6 +20,7 @@ from models.single_site import (
     NOTE_ZERO_DEMAND,
     describe_notes,
     evaluate_policy,
+    hadley_whitin,
     optimise_policy,
 )
 
@@ -155,6 +156,38 @@ def test_per_unit_cost_matches_dense_grid():
     assert np.all(mine <= best * (1 + 1e-9))
     np.testing.assert_allclose(mine, best, rtol=1e-6)
     assert pol.converged.all()
+
+
+def test_per_unit_cost_matches_dense_grid_when_two_local_minima():
+    # low backorder cost and large sd: along the optimal-R path G has an interior local minimum and a second
+    # one with R held at 0; the optimiser must return the global one (case found by random search)
+    n = 200
+    rng = np.random.default_rng(17)
+    D, A, h = rng.uniform(50, 120, n), rng.uniform(10, 150, n), rng.uniform(5, 20, n)
+    mu = rng.uniform(200, 500, n)
+    sd = mu * rng.uniform(0.4, 0.6, n)
+    b = h * rng.uniform(4, 9, n)
+    D[0], mu[0], sd[0], A[0], h[0], b[0] = 100.29216, 485.92027, 235.65922, 46.190505, 11.243675, 78.687384
+    pol = optimise_policy(D, mu, sd, A, h, backorder_cost=b)
+    eoq = np.sqrt(2 * A * D / h)
+    best, _, _ = zoom_grid_min(
+        lambda Q, R: ref_hw_cost(Q, R, D[:, None, None], mu[:, None, None], sd[:, None, None],
+                                 A[:, None, None], h[:, None, None], b[:, None, None]),
+        0.3 * eoq, 3 * eoq + 8 * sd, np.zeros(n), mu + 8 * sd)
+    mine = ref_hw_cost(pol.order_quantity, pol.reorder_point, D, mu, sd, A, h, b)
+    assert np.all(mine <= best * (1 + 1e-9))
+    np.testing.assert_allclose(mine, best, rtol=1e-6)
+    assert pol.reorder_point[0] == 0.0 and np.any(pol.reorder_point > 0)
+
+
+def test_plain_and_accelerated_hadley_whitin_agree():
+    D, A, h, mu, sd, rng = random_normal_cases(12, 200)
+    b = h * rng.uniform(2, 80, 200)
+    fast = hadley_whitin(D, mu, sd, A, h, b)
+    plain = hadley_whitin(D, mu, sd, A, h, b, accelerate=False)
+    np.testing.assert_allclose(fast.cost, plain.cost, rtol=1e-12)
+    assert fast.converged.all() and plain.converged.all()
+    assert fast.iterations.mean() < plain.iterations.mean()
 
 
 def test_per_unit_year_cost_matches_dense_grid():
