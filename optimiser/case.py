@@ -30,7 +30,6 @@ __all__ = [
     "read_policies",
     "stocked_pairs",
     "ancestors",
-    "descendants",
     "MODES",
     "BACKORDER_BASES",
     "DISTRIBUTIONS",
@@ -439,18 +438,31 @@ def _read_settings(folder: Path, warnings: list[str]) -> Settings:
 
 
 def ancestors(upstream: dict[str, str], site: str) -> list[str]:
-    """Sites above ``site``, nearest first (``upstream`` maps site -> upstream site or "")."""
+    """Sites above ``site``, nearest first.
+
+    Parameters
+    ----------
+    upstream : dict
+        Site -> its upstream site (``""`` for a site supplied by suppliers); must hold no loop.
+    site : str
+        The site.
+
+    Returns
+    -------
+    list of str
+        The upstream site, its upstream, ... up to the root.
+
+    Examples
+    --------
+    >>> ancestors({"wh": "", "hub": "wh", "shop": "hub"}, "shop")
+    ['hub', 'wh']
+    """
     out: list[str] = []
     current = upstream.get(site, "")
     while current:
         out.append(current)
         current = upstream.get(current, "")
     return out
-
-
-def descendants(upstream: dict[str, str], site: str) -> list[str]:
-    """Every site below ``site`` (children, grandchildren, ...)."""
-    return [s for s in upstream if site in ancestors(upstream, s)]
 
 
 def _check_tree(sites: pd.DataFrame) -> None:

@@ -32,7 +32,13 @@ DISTRIBUTION_CODES = {"normal": int(md.NORMAL), "poisson": int(md.POISSON), "neg
 
 
 def distribution_names(codes: np.ndarray) -> np.ndarray:
-    """Names (``normal``, ``poisson``, ``negbin``) of an array of distribution codes."""
+    """Names (``normal``, ``poisson``, ``negbin``) of an array of distribution codes.
+
+    Examples
+    --------
+    >>> distribution_names(np.array([0, 2], dtype=np.int8)).tolist()
+    ['normal', 'negbin']
+    """
     names = {v: k for k, v in DISTRIBUTION_CODES.items()}
     return np.array([names[int(c)] for c in np.asarray(codes)], dtype=object)
 
@@ -51,6 +57,13 @@ def through_demand(itemsites: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
     -------
     mean, var : ndarray
         Arrays aligned with the rows of ``itemsites``.
+
+    Examples
+    --------
+    >>> t = pd.DataFrame({"site": ["wh", "s1", "s2"], "item": ["a"] * 3, "upstream": ["", "wh", "wh"],
+    ...                   "daily_mean": [0.0, 2.0, 3.0], "daily_sd": [0.0, 1.0, 2.0]})
+    >>> [m.tolist() for m in through_demand(t)]
+    [[5.0, 2.0, 3.0], [5.0, 1.0, 4.0]]
     """
     upstream = dict(zip(itemsites["site"], itemsites["upstream"], strict=True))
     own = itemsites[["site", "item", "daily_mean"]].copy()
