@@ -293,6 +293,7 @@ COMMANDS: list[Command | Callable[[], Command]] = [
     CHECK,
     EVALUATE,
     module_command("simulate", "optimiser.simulate"),
+    module_command("group", "optimiser.grouping"),
 ]
 
 

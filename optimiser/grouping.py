@@ -1,0 +1,397 @@
+"""Joint replenishment for a case: order families -> grouping model -> groups table and summary.
+
+A *family* is what one site buys from one supplier (a site with no upstream): the supplier's ``order_cost`` is
+the shared (major) cost, each item's ``line_cost`` (``items.csv``, else ``suppliers.csv``) the minor cost,
+the supplier's ``max_volume``/``max_weight`` the capacity of one order and ``min_order_value`` its minimum
+value (at ``unit_cost``). Optionally (``deliveries=True``) each store's deliveries from its upstream form a
+family too, with the site's ``delivery_cost`` as the shared cost and no line cost.
+
+Each family is solved by :func:`models.grouping_milp.solve_family` and compared with ordering every item
+alone with its own (R, Q) (:func:`models.single_site.optimise_policy`, order cost = major + minor cost, normal
+lead-time demand: the same stochastic basis as the grouped periodic policy).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import shutil
+import tempfile
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from models import grouping_milp as gm
+from models import single_site as ss
+from models.demand import NORMAL, lead_time_demand
+from optimiser.case import Case
+from optimiser.itemsites import build_itemsites, through_demand
+
+GROUP_COLUMNS = [
+    "family", "site", "supplier", "item", "base_cycle_days", "cycle_multiple", "order_interval_days",
+    "order_up_to", "safety_factor", "annual_cost", "independent_cost", "status",
+]
+FAMILY_COLUMNS = [
+    "family", "kind", "site", "supplier", "items", "status", "base_cycle_days", "independent_cost",
+    "grouped_cost", "savings", "savings_pct", "binding", "gap", "candidates", "candidates_kept", "seconds",
+    "tolerance_proven", "message",
+]
+
+
+@dataclass(frozen=True)
+class GroupResult:
+    """Outcome of :func:`group_case`.
+
+    Attributes
+    ----------
+    groups : DataFrame
+        One row per (family, item), columns :data:`GROUP_COLUMNS`.
+    families : DataFrame
+        One row per family, columns :data:`FAMILY_COLUMNS`.
+    warnings : list of str
+    settings : object
+        The case settings.
+    options : dict
+        The options the model ran with.
+    """
+
+    groups: pd.DataFrame
+    families: pd.DataFrame
+    warnings: list[str] = field(default_factory=list)
+    settings: Any = None
+    options: dict = field(default_factory=dict)
+
+    def totals(self) -> dict[str, float]:
+        """Sum of independent and grouped cost and savings over the families that were solved."""
+        ok = self.families[self.families["status"].isin(["optimal", "time_limit"])]
+        ind = float(ok["independent_cost"].sum())
+        grp = float(ok["grouped_cost"].sum())
+        return {"families": int(len(self.families)), "solved": int(len(ok)), "independent_cost": ind,
+                "grouped_cost": grp, "savings": ind - grp,
+                "savings_pct": (ind - grp) / ind * 100.0 if ind > 0 else 0.0}
+
+
+def _independent_costs(
+    rows: pd.DataFrame, var_daily: np.ndarray, order_cost: np.ndarray, settings: Any
+) -> np.ndarray:
+    """Annual cost of ordering each item alone with its own (R, Q), normal lead-time demand."""
+    d = rows["annual_demand"].to_numpy(float) / settings.days_per_year
+    mu, sd = lead_time_demand(d, np.sqrt(var_daily), rows["lead_days"].to_numpy(float),
+                              rows["lead_days_sd"].to_numpy(float))
+    b = rows["backorder_cost"].to_numpy(float)
+    kw: dict[str, Any] = {"distribution": NORMAL, "mode": settings.mode,
+                          "backorder_basis": settings.backorder_basis}
+    if settings.mode == "cost" or np.any(np.isfinite(b)):
+        kw["backorder_cost"] = np.where(np.isfinite(b), b, 0.0)
+    if settings.mode != "cost":
+        kw["target"] = rows["target"].to_numpy(float)
+    pol = ss.optimise_policy(rows["annual_demand"].to_numpy(float), mu, sd, order_cost,
+                             rows["holding_cost"].to_numpy(float), **kw)
+    return np.asarray(pol.total_cost, dtype=float)
+
+
+def _families(case: Case, table: pd.DataFrame, deliveries: bool) -> list[dict[str, Any]]:
+    sup = case.suppliers.set_index("supplier")
+    sites = case.sites.set_index("site")
+    item_line = case.items.set_index("item")["line_cost"] if "line_cost" in case.items else None
+    shelf = case.items.set_index("item")["shelf_life_days"] if "shelf_life_days" in case.items else None
+    fams = []
+    root = table[table["upstream"] == ""]
+    for (site, supplier), rows in root.groupby(["site", "supplier"], sort=True):
+        srec = sup.loc[supplier]
+        minor = np.full(len(rows), float(srec["line_cost"]))
+        if item_line is not None:
+            own = item_line.reindex(rows["item"]).to_numpy(float)
+            minor = np.where(np.isfinite(own), own, minor)
+        fams.append({
+            "family": f"{site}/{supplier}", "kind": "supplier", "site": site, "supplier": supplier,
+            "rows": rows,
+            "major": float(srec["order_cost"]), "minor": minor,
+            "cap_v": float(srec["max_volume"]) if np.isfinite(srec["max_volume"]) else math.inf,
+            "cap_w": float(srec["max_weight"]) if np.isfinite(srec["max_weight"]) else math.inf,
+            "min_value": float(srec["min_order_value"]),
+            "shelf": None if shelf is None else shelf.reindex(rows["item"]).to_numpy(float),
+        })
+    if deliveries:
+        below = table[table["upstream"] != ""]
+        for (site, upstream), rows in below.groupby(["site", "upstream"], sort=True):
+            fams.append({
+                "family": f"{site}<-{upstream}", "kind": "delivery", "site": site, "supplier": upstream,
+                "rows": rows, "major": float(sites.loc[site, "delivery_cost"]), "minor": np.zeros(len(rows)),
+                "cap_v": math.inf, "cap_w": math.inf, "min_value": 0.0,
+                "shelf": None if shelf is None else shelf.reindex(rows["item"]).to_numpy(float),
+            })
+    return fams
+
+
+def group_case(
+    case: Case,
+    itemsites: pd.DataFrame | None = None,
+    *,
+    deliveries: bool = False,
+    powers_of_two: bool = False,
+    k_max: int = gm.K_MAX,
+    grid_ratio: float = gm.GRID_RATIO,
+    time_limit: float = gm.TIME_LIMIT,
+    progress: Callable[[str], None] | None = None,
+) -> GroupResult:
+    """Group every family of a case under its shared order cost.
+
+    Parameters
+    ----------
+    case : Case
+        From :func:`optimiser.case.load_case`.
+    itemsites : DataFrame, optional
+        The item-site table (built from ``case`` when not given).
+    deliveries : bool
+        Also group each store's deliveries from its upstream (shared cost = ``delivery_cost``).
+    powers_of_two : bool
+        Multiples restricted to 1, 2, 4, ...
+    k_max, grid_ratio, time_limit
+        Passed to :func:`models.grouping_milp.solve_family`.
+    progress : callable, optional
+        Called with a line of text per family.
+
+    Returns
+    -------
+    GroupResult
+
+    Notes
+    -----
+    Items without demand are listed (status ``no demand``) but not ordered. A family without a shared cost
+    (0) gains nothing from grouping and is reported as ``not grouped``. Independent cost: each item alone,
+    order cost = shared + line cost, with its cost-optimal (or service-target) (R, Q) on normal lead-time
+    demand; grouped cost: shared cost per cycle plus, per item, line cost per order, cycle stock and the
+    safety stock and backorders of a periodic order-up-to policy over interval plus lead time.
+
+    Examples
+    --------
+    >>> result = group_case(load_case("cases/demo"))  # doctest: +SKIP
+    >>> result.families[["family", "independent_cost", "grouped_cost", "savings"]]  # doctest: +SKIP
+    """
+    say = progress or (lambda _t: None)
+    settings = case.settings
+    table = build_itemsites(case) if itemsites is None else itemsites
+    _, var_all = through_demand(table)
+    table = table.assign(_var=var_all)
+    dpy = float(settings.days_per_year)
+    warnings: list[str] = []
+    group_rows: list[pd.DataFrame] = []
+    fam_rows: list[dict[str, Any]] = []
+    fams = _families(case, table, deliveries)
+    for f in fams:
+        rows = f["rows"].reset_index(drop=True)
+        n = len(rows)
+        active = rows["annual_demand"].to_numpy(float) > 0
+        out = pd.DataFrame({"family": f["family"], "site": f["site"], "supplier": f["supplier"],
+                            "item": rows["item"].to_numpy(), "base_cycle_days": np.nan,
+                            "cycle_multiple": pd.array([pd.NA] * n, dtype="Int64"),
+                            "order_interval_days": np.nan, "order_up_to": np.nan, "safety_factor": np.nan,
+                            "annual_cost": 0.0, "independent_cost": 0.0, "status": "no demand"})
+        rec: dict[str, Any] = {
+            "family": f["family"], "kind": f["kind"], "site": f["site"], "supplier": f["supplier"],
+            "items": int(active.sum()), "base_cycle_days": np.nan, "independent_cost": 0.0,
+            "grouped_cost": 0.0, "savings": 0.0, "savings_pct": 0.0, "binding": "", "gap": np.nan,
+            "candidates": 0, "candidates_kept": 0, "seconds": 0.0, "tolerance_proven": False,
+        }
+        act = rows[active]
+        if not active.any():
+            rec.update(status="no demand", message="no item of the family has demand")
+            fam_rows.append(rec)
+            group_rows.append(out)
+            continue
+        minor = f["minor"][active]
+        ind = _independent_costs(act, act["_var"].to_numpy(float), f["major"] + minor, settings)
+        out.loc[active, "independent_cost"] = ind
+        rec["independent_cost"] = float(ind.sum())
+        if f["major"] <= 0:
+            rec.update(status="not grouped", grouped_cost=rec["independent_cost"],
+                       message="no shared order cost: grouping cannot save anything")
+            out.loc[active, "status"] = "not grouped"
+            out.loc[active, "annual_cost"] = ind
+            fam_rows.append(rec)
+            group_rows.append(out)
+            continue
+        vol = act["volume"].to_numpy(float)
+        wgt = act["weight"].to_numpy(float)
+        for name, arr, cap in (("volume", vol, f["cap_v"]), ("weight", wgt, f["cap_w"])):
+            if math.isfinite(cap) and np.any(~np.isfinite(arr)):
+                warnings.append(f"family {f['family']}: {int(np.sum(~np.isfinite(arr)))} item(s) have no "
+                                f"{name}; they are counted as 0 against the order capacity")
+        shelf = f["shelf"][active] / dpy if f["shelf"] is not None else np.full(len(act), np.inf)
+        shelf = np.where(np.isfinite(shelf), shelf, np.inf)
+        target = act["target"].to_numpy(float) if settings.mode != "cost" else None
+        fam = gm.make_family(
+            f["major"], minor, act["holding_cost"].to_numpy(float), act["annual_demand"].to_numpy(float),
+            demand_var=act["_var"].to_numpy(float) * dpy, lead_time=act["lead_days"].to_numpy(float) / dpy,
+            lead_time_sd=act["lead_days_sd"].to_numpy(float) / dpy,
+            backorder_cost=act["backorder_cost"].to_numpy(float), unit_value=act["unit_cost"].to_numpy(float),
+            volume=np.nan_to_num(vol, nan=0.0), weight=np.nan_to_num(wgt, nan=0.0), max_interval=shelf,
+            capacity_volume=f["cap_v"], capacity_weight=f["cap_w"], min_order_value=f["min_value"],
+            backorder_basis=settings.backorder_basis, mode=settings.mode, target=target,
+        )
+        say(f"grouping {f['family']}: {len(act)} item(s)")
+        sol = gm.solve_family(fam, k_max=k_max, powers_of_two=powers_of_two, grid_ratio=grid_ratio,
+                              time_limit=time_limit)
+        T_days = sol.cycle * dpy
+        out.loc[active, "base_cycle_days"] = T_days
+        out.loc[active, "cycle_multiple"] = sol.multiples
+        out.loc[active, "order_interval_days"] = T_days * sol.multiples
+        out.loc[active, "order_up_to"] = sol.order_up_to
+        out.loc[active, "safety_factor"] = sol.safety_factor
+        # the shared cost is spread over the items in proportion to how often they come along
+        share = (1.0 / sol.multiples) / np.sum(1.0 / sol.multiples)
+        out.loc[active, "annual_cost"] = sol.item_cost + sol.major_cost_rate * share
+        out.loc[active, "status"] = sol.status
+        grouped = sol.total_cost
+        rec.update(status=sol.status, base_cycle_days=T_days, grouped_cost=grouped,
+                   savings=rec["independent_cost"] - grouped,
+                   savings_pct=(rec["independent_cost"] - grouped) / rec["independent_cost"] * 100.0
+                   if rec["independent_cost"] > 0 else 0.0,
+                   binding=",".join(sol.binding), gap=sol.gap, candidates=sol.candidates,
+                   candidates_kept=sol.candidates_kept, seconds=sol.seconds,
+                   tolerance_proven=sol.tolerance_proven, message=sol.message)
+        if sol.status not in ("optimal",):
+            warnings.append(f"family {f['family']}: {sol.status}: {sol.message}")
+        fam_rows.append(rec)
+        group_rows.append(out)
+    groups = pd.concat(group_rows, ignore_index=True) if group_rows else pd.DataFrame(columns=GROUP_COLUMNS)
+    families = pd.DataFrame(fam_rows, columns=FAMILY_COLUMNS)
+    options = {"deliveries": deliveries, "powers_of_two": powers_of_two, "k_max": k_max,
+               "grid_ratio": grid_ratio, "time_limit_seconds": time_limit}
+    return GroupResult(groups[GROUP_COLUMNS], families, warnings, settings, options)
+
+
+def write_groups(
+    result: GroupResult, out_dir: str | Path, *, case_name: str = "", case_path: str = ""
+) -> list[str]:
+    """Write ``groups.csv``, ``families.csv`` and ``summary.json`` into ``out_dir`` (atomically).
+
+    Parameters
+    ----------
+    result : GroupResult
+        From :func:`group_case`.
+    out_dir : str or Path
+        Target folder; created, or replaced when it holds an earlier rqnet output (never otherwise).
+    case_name, case_path : str
+        Shown in ``summary.json``.
+
+    Returns
+    -------
+    list of str
+        Files written, relative to ``out_dir``.
+
+    Notes
+    -----
+    Everything is written into a temporary folder beside the target and renamed into place when complete.
+
+    Examples
+    --------
+    >>> write_groups(group_case(load_case("cases/demo")), "out/groups")  # doctest: +SKIP
+    """
+    from optimiser.report import TOOL, _check_target, _clean, tool_version
+
+    target = Path(out_dir).resolve()
+    _check_target(target)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    temp = Path(tempfile.mkdtemp(prefix=f".{target.name}.tmp-", dir=target.parent))
+    written: list[str] = []
+    try:
+        result.groups.to_csv(temp / "groups.csv", index=False, float_format="%.6g")
+        result.families.to_csv(temp / "families.csv", index=False, float_format="%.6g")
+        written += ["groups.csv", "families.csv"]
+        fams = []
+        for rec in result.families.to_dict(orient="records"):
+            rec["binding"] = [b for b in str(rec["binding"]).split(",") if b]
+            fams.append(rec)
+        summary = {
+            "tool": TOOL,
+            "version": tool_version(),
+            "command": "group",
+            "created": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
+            "case": {"name": case_name, "path": case_path},
+            "options": result.options,
+            "totals": result.totals(),
+            "families": fams,
+            "warnings": result.warnings,
+        }
+        (temp / "summary.json").write_text(json.dumps(_clean(summary), indent=2, ensure_ascii=False) + "\n",
+                                           encoding="utf-8")
+        written.append("summary.json")
+        os.chmod(temp, 0o755)
+        if target.exists():
+            old = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
+            old.rmdir()
+            target.rename(old)
+            temp.rename(target)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            temp.rename(target)
+    except BaseException:
+        shutil.rmtree(temp, ignore_errors=True)
+        raise
+    return written
+
+
+# ============================================================================================================
+# the `rqnet group` subcommand (registered in optimiser/cli.py)
+# ============================================================================================================
+
+COMMAND_HELP = "group items that share a supplier's order cost and compare with ordering each item alone"
+COMMAND_DESCRIPTION = (
+    "For every site and supplier it buys from, choose a base cycle and for each item how many cycles pass "
+    "between its orders, so that the supplier's order cost is shared, orders fit the supplier's max_volume "
+    "and max_weight, reach its min_order_value, and no item waits longer than its shelf_life_days. Each item "
+    "gets an order-up-to level for its interval plus lead time. groups.csv lists per item the base cycle, "
+    "the multiple, the interval, the order-up-to level and its annual cost; families.csv and summary.json "
+    "give per family the cost of ordering each item alone with its own reorder point and order quantity, "
+    "the grouped cost, the saving and the constraint that binds."
+)
+
+
+def add_arguments(parser) -> None:
+    """Arguments of ``rqnet group``."""
+    parser.add_argument("case", metavar="CASE", type=Path, help="the case folder")
+    parser.add_argument("--out", metavar="DIR", type=Path, required=True,
+                        help="folder for the results; created, or replaced if it holds earlier rqnet results")
+    parser.add_argument("--deliveries", action="store_true",
+                        help="also group each branch's deliveries from its upstream (shared delivery_cost)")
+    parser.add_argument("--powers-of-two", action="store_true",
+                        help="intervals of 1, 2, 4, 8 ... base cycles only (nested schedules)")
+    parser.add_argument("--max-multiple", metavar="K", type=int, default=gm.K_MAX,
+                        help=f"longest interval in base cycles (default {gm.K_MAX})")
+    parser.add_argument("--time-limit", metavar="SEC", type=float, default=gm.TIME_LIMIT,
+                        help=f"solver time per family in seconds (default {gm.TIME_LIMIT:g})")
+
+
+def run(args) -> int:
+    """Run ``rqnet group``; returns the exit code."""
+    from optimiser.case import load_case
+    from optimiser.cli import EXIT_OK, progress_printer
+    from optimiser.errors import CaseError
+
+    say = progress_printer(args)
+    if args.max_multiple < 1:
+        raise CaseError("--max-multiple", "must be a whole number of at least 1", value=args.max_multiple)
+    if not args.time_limit > 0:
+        raise CaseError("--time-limit", "must be above 0 seconds", value=args.time_limit)
+    say(f"reading case {args.case}")
+    case = load_case(args.case)
+    result = group_case(case, deliveries=args.deliveries, powers_of_two=args.powers_of_two,
+                        k_max=args.max_multiple, time_limit=args.time_limit, progress=say)
+    write_groups(result, args.out, case_name=case.settings.name, case_path=str(args.case))
+    tot = result.totals()
+    cur = case.settings.currency
+    print(f"{tot['families']} families ({tot['solved']} solved): ordering alone "
+          f"{tot['independent_cost']:,.2f} {cur}, grouped {tot['grouped_cost']:,.2f} {cur} a year, "
+          f"saving {tot['savings']:,.2f} {cur} ({tot['savings_pct']:.1f}%)")
+    for w in result.warnings:
+        print(f"warning: {w}")
+    print(f"written to {args.out}")
+    return EXIT_OK
