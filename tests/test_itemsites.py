@@ -132,3 +132,18 @@ def test_single_site_case_has_no_upstream(case_writer) -> None:
     assert (table["upstream"] == "").all() and len(table) == 2
     assert rows.loc[("shop", "a"), "lead_days"] == 10.0
     assert np.isclose(rows.loc[("shop", "a"), "annual_demand"], 1800.0)
+
+
+def test_three_levels_pass_demand_up_the_chain(case_writer) -> None:
+    files = {
+        "sites.csv": "site,upstream,transit_days,delivery_cost\nwh,,,\nhub,wh,4,60\nshop,hub,1,15\n",
+        "demand.csv": "site,item,daily_mean,daily_sd\nhub,a,2,1\nshop,a,5,2\n",
+    }
+    table, rows = _table(case_writer, files)
+    assert set(rows.index) == {("wh", "a"), ("hub", "a"), ("shop", "a")}
+    assert rows.loc[("wh", "a"), "annual_demand"] == (2 + 5) * 360
+    assert rows.loc[("hub", "a"), "annual_demand"] == (2 + 5) * 360
+    assert rows.loc[("shop", "a"), "annual_demand"] == 5 * 360
+    assert (rows.loc[("hub", "a"), "lead_days"], rows.loc[("hub", "a"), "order_cost"]) == (4.0, 60.0)
+    mean, var = through_demand(table)
+    assert mean.tolist() == [7.0, 7.0, 5.0] and var.tolist() == [5.0, 5.0, 4.0]
