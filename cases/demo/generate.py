@@ -293,14 +293,14 @@ def main() -> None:
     _write("demand.csv", ["site", "item", "daily_mean", "daily_sd"], demand)
 
     # stocking rules: fixed van-load quantities for bulky fenders at branches, full pallets of antifouling at
-    # the depot, a higher shortage cost for life jackets at the two busiest branches
+    # the depot (five pallets of 48 tins), a higher shortage cost for life jackets at the two busiest branches
     rules: list[list[object]] = []
     for site, item, _m, _s in demand:
         if item.startswith("hard-fender") and site in ("lowmarsh", "kestrel-bay"):
             rules.append([site, item, 4, None, None, None])
     for row in items:
         if str(row[0]).startswith("coat-antifoul"):
-            rules.append(["depot", row[0], 48, None, None, None])
+            rules.append(["depot", row[0], 240, None, None, None])
     for site in ("northquay", "pembry-docks"):
         for item in ("safe-lifejacket-150n", "safe-lifejacket-275n"):
             if any(d[0] == site and d[1] == item for d in demand):
