@@ -48,6 +48,16 @@ CAUTION = (
 )
 
 
+BASIS_WORDS = {
+    "per_unit": "backorder cost per unit short",
+    "per_unit_year": "backorder cost per unit short per year",
+}
+METHOD_WORDS = {
+    "network": "Sites were planned together: a store's lead time includes its expected wait upstream.",
+    "single-site": "Each site was planned on its own.",
+}
+
+
 def tool_version() -> str:
     """Installed version of rqnet (``"unknown"`` when not installed as a package)."""
     try:
@@ -155,7 +165,9 @@ def _site_summary(result: PlanResult, site: str, totals: dict[str, Any], frame: 
         "",
         f"Case: {result.settings.name}. Service rule: {result.settings.mode.replace('_', ' ')}"
         + (f", target {result.settings.target:g}" if result.settings.target is not None else "")
-        + ".",
+        + (f", {BASIS_WORDS[result.settings.backorder_basis]}" if result.settings.mode == "cost" else "")
+        + ". "
+        + METHOD_WORDS.get(result.method, ""),
         "",
         "## Totals per year",
         "",
