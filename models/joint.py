@@ -282,7 +282,7 @@ def exact_cyclic(major_cost: float, minor_cost, holding_demand) -> JointPolicy:
         cap = max(1.0, np.floor(MAX_BREAKPOINTS / s.size))
         j_max = np.minimum(j_max, cap)
     j_max = np.maximum(j_max, 0).astype(np.int64)
-    k_top = optimal_multiples(T_hi, s, H)  # all ones by construction of T_hi
+    k_top = np.ones_like(s)  # above every breakpoint (all lie at or below T_hi) every k_i = 1
     counts = j_max
     item = np.repeat(np.arange(s.size), counts)
     starts = np.cumsum(counts) - counts
