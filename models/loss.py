@@ -99,6 +99,23 @@ def normal_loss2(z) -> np.ndarray:
     return np.where(z < 0, 0.5 * (1.0 + a * a) - g2, g2)
 
 
+def normal_losses(z) -> tuple[np.ndarray, np.ndarray]:
+    """G(z) and G2(z) together (one exp and one erfcx for both); same formulas as
+    :func:`normal_loss` and :func:`normal_loss2`."""
+    z = np.asarray(z, dtype=float)
+    a = np.abs(z)
+    with np.errstate(under="ignore", over="ignore", invalid="ignore"):
+        e = np.exp(-0.5 * a * a)
+        m = 0.5 * special.erfcx(a / _SQRT2)
+        g = e * (_INV_SQRT2PI - a * m)
+        g2 = 0.5 * e * ((a * a + 1.0) * m - a * _INV_SQRT2PI)
+    inf = np.isinf(a)
+    g = np.where(inf, 0.0, np.maximum(g, 0.0))
+    g2 = np.where(inf, 0.0, np.maximum(g2, 0.0))
+    neg = z < 0
+    return np.where(neg, g + a, g), np.where(neg, 0.5 * (1.0 + a * a) - g2, g2)
+
+
 def normal_sf(z) -> np.ndarray:
     """Standard normal survival function P(Z > z) (accurate in the upper tail)."""
     return special.ndtr(-np.asarray(z, dtype=float))

@@ -49,6 +49,7 @@ from models.loss import (
     _tail_ge,
     normal_loss,
     normal_loss2,
+    normal_losses,
 )
 
 _INV_SQRT2PI = 1.0 / np.sqrt(2.0 * np.pi)
@@ -826,12 +827,24 @@ def _evaluate(D, mu, sd, A, h, dist, b, R, Q, basis, it, conv, note):
     nR = np.zeros(n)
     nm = ~discrete & ~zero
     if nm.any():
-        short[nm] = _nrm_short(R[nm], Qs[nm], mu[nm], sd[nm])
-        eb[nm] = _nrm_backorders(R[nm], Qs[nm], mu[nm], sd[nm])
-        pos = sd[nm] > 0
-        s = np.where(pos, sd[nm], 1.0)
-        csl[nm] = np.where(pos, special.ndtr((R[nm] - mu[nm]) / s), (R[nm] >= mu[nm]).astype(float))
-        nR[nm] = _nrm_loss(R[nm], mu[nm], sd[nm])
+        Rn, Qn, mn, sn = R[nm], Qs[nm], mu[nm], sd[nm]
+        pos = sn > 0
+        s = np.where(pos, sn, 1.0)
+        z1 = (Rn - mn) / s
+        qz = Qn / s
+        g1, l1 = normal_losses(z1)
+        g2, l2 = normal_losses(z1 + qz)
+        small = qz < SMALL_WINDOW
+        qq = np.where(small, 1.0, qz)
+        gm = normal_loss(z1 + 0.5 * qz) if small.any() else 0.0
+        sh_c = np.where(small, special.ndtr(-(z1 + 0.5 * qz)), (g1 - g2) / qq)
+        eb_c = s * np.where(small, gm, (l1 - l2) / qq)
+        d1 = np.maximum(mn - Rn, 0.0)
+        d2 = np.maximum(mn - Rn - Qn, 0.0)
+        short[nm] = np.where(pos, sh_c, (d1 - d2) / Qn)
+        eb[nm] = np.where(pos, eb_c, 0.5 * (d1 * d1 - d2 * d2) / Qn)
+        csl[nm] = np.where(pos, special.ndtr(z1), (Rn >= mn).astype(float))
+        nR[nm] = np.where(pos, s * g1, d1)
     ct = discrete & ~zero
     if ct.any():
         c = _Counts(mu[ct], sd[ct], dist[ct])

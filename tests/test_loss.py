@@ -5,7 +5,7 @@ import pytest
 from scipy import integrate, stats
 
 from models.demand import NEGBIN, NORMAL, POISSON
-from models.loss import cdf, loss, loss2, normal_loss, normal_loss2, pmf, sf
+from models.loss import cdf, loss, loss2, normal_loss, normal_loss2, normal_losses, pmf, sf
 
 
 def test_normal_loss_published_table_row():
@@ -113,3 +113,10 @@ def test_normal_scaling_and_point_mass():
 def test_bad_distribution_code_is_rejected():
     with pytest.raises(ValueError, match="distribution codes"):
         loss(1.0, 1.0, 1.0, 7)
+
+
+def test_combined_normal_losses_match_separate_functions():
+    z = np.concatenate([np.linspace(-40, 40, 801), [np.inf, -1e6]])
+    g, g2 = normal_losses(z)
+    np.testing.assert_array_equal(g, normal_loss(z))
+    np.testing.assert_array_equal(g2, normal_loss2(z))
