@@ -501,12 +501,11 @@ def stocked_pairs(sites: pd.DataFrame, demand: pd.DataFrame, stocking: pd.DataFr
         pairs = stocking[["site", "item"]]
     else:
         upstream = dict(zip(sites["site"], sites["upstream"], strict=True))
-        found: set[tuple[str, str]] = set()
-        for site, item in zip(demand["site"], demand["item"], strict=True):
-            found.add((site, item))
-            for above in ancestors(upstream, site):
-                found.add((above, item))
-        pairs = pd.DataFrame(sorted(found), columns=["site", "item"])
+        own = demand[["site", "item"]]
+        parts = [own]
+        for site, rows in own.groupby("site", sort=False):  # a loop over sites, each step over whole arrays
+            parts += [rows.assign(site=above) for above in ancestors(upstream, str(site))]
+        pairs = pd.concat(parts, ignore_index=True).drop_duplicates()
     order = {s: i for i, s in enumerate(sites["site"])}
     pairs = pairs.assign(_o=pairs["site"].map(order)).sort_values(["_o", "item"], kind="stable")
     return pairs.drop(columns="_o").reset_index(drop=True)

@@ -39,8 +39,10 @@ def distribution_names(codes: np.ndarray) -> np.ndarray:
     >>> distribution_names(np.array([0, 2], dtype=np.int8)).tolist()
     ['normal', 'negbin']
     """
-    names = {v: k for k, v in DISTRIBUTION_CODES.items()}
-    return np.array([names[int(c)] for c in np.asarray(codes)], dtype=object)
+    table = np.empty(max(DISTRIBUTION_CODES.values()) + 1, dtype=object)
+    for name, code in DISTRIBUTION_CODES.items():
+        table[code] = name
+    return table[np.asarray(codes, dtype=np.int64)]
 
 
 def through_demand(itemsites: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
@@ -69,10 +71,8 @@ def through_demand(itemsites: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
     own = itemsites[["site", "item", "daily_mean"]].copy()
     own["var"] = itemsites["daily_sd"].to_numpy(dtype=float) ** 2
     parts = [own]
-    for site in own["site"].unique():  # loop over sites (a small dimension), each step over whole arrays
-        rows = own[own["site"] == site]
-        for above in ancestors(upstream, site):
-            parts.append(rows.assign(site=above))
+    for site, rows in own.groupby("site", sort=False):  # a loop over sites, each step over whole arrays
+        parts += [rows.assign(site=above) for above in ancestors(upstream, str(site))]
     total = (
         pd.concat(parts, ignore_index=True).groupby(["site", "item"], sort=False)[["daily_mean", "var"]].sum()
     )
@@ -188,7 +188,7 @@ def build_itemsites(case: Case) -> pd.DataFrame:
     if auto.any():
         ltd_mean, ltd_sd = md.lead_time_demand(mean, np.sqrt(var), out["lead_days"], out["lead_days_sd"])
         class_codes = {name: code for code, name in md.CLASS_NAMES.items()}
-        demand_class = np.array([class_codes.get(c, -1) for c in frame["demand_class"].fillna("")])
+        demand_class = frame["demand_class"].map(class_codes).fillna(-1).to_numpy(dtype=np.int64)
         chosen = md.choose_distribution(
             ltd_mean[auto], ltd_sd[auto] ** 2, "auto", demand_class=demand_class[auto]
         )
