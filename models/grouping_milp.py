@@ -76,6 +76,9 @@ LAGRANGE_SWEEPS = 3
 #: bisection steps for the fill-rate safety factor
 FILL_BISECT = 60
 
+#: include the special candidates (exact/RAND cycles, breakpoints); off only to test the bare grid's tolerance
+_SPECIAL_POINTS = True
+
 MODES = ("cost", "cycle_service", "fill_rate")
 BASES = ("per_unit", "per_unit_year")
 
@@ -934,8 +937,8 @@ def solve_family(
     grid = r_lo * ratio ** np.arange(n_grid)
     grid = grid[grid <= r_hi * (1 + 1e-12)]
     # special points: exact/RAND cycles, range ends, shelf-life and capacity breakpoints
-    special = [ex.cycle, rnd.cycle, r_lo, r_hi]
-    if np.any(np.isfinite(fam.max_interval)):
+    special = [ex.cycle, rnd.cycle, r_lo, r_hi] if _SPECIAL_POINTS else [r_lo, r_hi]
+    if _SPECIAL_POINTS and np.any(np.isfinite(fam.max_interval)):
         L = fam.max_interval[np.isfinite(fam.max_interval)]
         special.extend((L[:, None] / ks[None, :]).ravel().tolist())
     dv, dw, du = _loads(fam)
@@ -943,10 +946,10 @@ def solve_family(
     if powers_of_two:
         k_grid = 2 ** np.floor(np.log2(k_grid)).astype(np.int64)
     for load, cap in ((dv, fam.capacity_volume), (dw, fam.capacity_weight)):
-        if math.isfinite(cap):
+        if _SPECIAL_POINTS and math.isfinite(cap):
             lk = k_grid @ load
             special.extend((cap / lk[lk > 0]).tolist())
-    if fam.min_order_value > 0:
+    if _SPECIAL_POINTS and fam.min_order_value > 0:
         v1 = (k_grid == 1) @ du
         special.extend((fam.min_order_value / v1[v1 > 0]).tolist())
     special = np.asarray(special, dtype=float)
@@ -965,15 +968,15 @@ def solve_family(
     kidx = np.searchsorted(ks, k_heur)
     ub_c = S / T + np.take_along_axis(cost, kidx[:, :, None], axis=2)[:, :, 0].sum(axis=1)
     feas_c = np.isfinite(ub_c) & _feasible_rows(fam, T, k_heur)
-    inc = None
+    # pruning uses incumbents among the candidates only (the probe points above served the range alone)
+    inc, ub_cand = None, math.inf
     if np.any(feas_c):
         j = int(np.argmin(np.where(feas_c, ub_c, np.inf)))
-        if ub_c[j] <= ub:
-            ub, inc = float(ub_c[j]), (j, k_heur[j].copy())
-    lag = _lagrangian(fam, T, cost, ks[:K_use], ub)
-    if lag.incumbent is not None and lag.incumbent_cost < ub:
-        ub, inc = lag.incumbent_cost, lag.incumbent
-    slack = ub * (1 + 1e-9) + 1e-12
+        ub_cand, inc = float(ub_c[j]), (j, k_heur[j].copy())
+    lag = _lagrangian(fam, T, cost, ks[:K_use], ub_cand)
+    if lag.incumbent is not None and lag.incumbent_cost < ub_cand:
+        ub_cand, inc = lag.incumbent_cost, lag.incumbent
+    slack = ub_cand * (1 + 1e-9) + 1e-12
     keep = np.isfinite(lag.bound) & (lag.bound <= slack)
     # reduced-cost fixing: x_cik = 1 would force the bound above the incumbent
     rc = lag.reduced_cost
@@ -983,6 +986,8 @@ def solve_family(
         keep[inc[0]] = True
         allowed[inc[0], np.arange(n), np.searchsorted(ks, inc[1])] = True
     kept_idx = np.nonzero(keep)[0]
+    if kept_idx.size == 0:
+        return rand_fallback("fallback", "no candidate cycle admits a feasible policy; RAND heuristic used")
     Tk = T[kept_idx]
     cost_k = cost[kept_idx]
     allowed = allowed[kept_idx]
@@ -1003,7 +1008,7 @@ def solve_family(
     both = (math.isfinite(fam.capacity_volume) or math.isfinite(fam.capacity_weight)
             or np.any(np.isfinite(fam.max_interval))) and fam.min_order_value > 0
     tol_ok = (not both) and fam.mode != "fill_rate" and ratio == grid_ratio
-    info = {"upper_bound_heuristic": ub, "range": (r_lo, r_hi), "lagrange_iterations": lag.iterations,
+    info = {"upper_bound_heuristic": ub_cand, "range": (r_lo, r_hi), "lagrange_iterations": lag.iterations,
             "lagrange_bound": float(np.min(lag.bound))}
 
     try:
