@@ -53,7 +53,9 @@ ST_SHIPPED_UNITS = 9  # units shipped to the site by its upstream site
 ST_DEMAND_EVENTS = 10  # customer demand events at the site
 ST_CUSTOMER_UNITS = 11  # customer demand units at the site
 ST_MEASURED_DAYS = 12  # length of the measured period (same for every site)
-N_STATS = 13
+ST_CUSTOMER_IMMEDIATE = 13  # customer units met from stock at once
+ST_AREA_CUSTOMER_BACKORDERS = 14  # integral of backordered customer units
+N_STATS = 15
 
 # task status
 STATUS_OK = 0
@@ -108,6 +110,7 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
     n_sites = parent.shape[0]
     oh = np.zeros(n_sites, dtype=np.int64)  # on hand
     bo = np.zeros(n_sites, dtype=np.int64)  # backordered units waiting at the site
+    cbo = np.zeros(n_sites, dtype=np.int64)  # of which customer units
     ipos = np.zeros(n_sites, dtype=np.int64)  # inventory position
     short = np.zeros(n_sites, dtype=np.int64)  # a demand was short since the last receipt
     last = np.zeros(n_sites)  # time of the last change of oh / bo
@@ -226,6 +229,7 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
                 dt = t - last[s]
                 stats[s, ST_AREA_ON_HAND] += oh[s] * dt
                 stats[s, ST_AREA_BACKORDERS] += bo[s] * dt
+                stats[s, ST_AREA_CUSTOMER_BACKORDERS] += cbo[s] * dt
                 stats[s, ST_CYCLES] += 1
                 stats[s, ST_SHORT_CYCLES] += short[s]
             last[s] = t
@@ -243,7 +247,9 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
                     break
                 oh[s] -= x
                 bo[s] -= x
-                if c >= 0:
+                if c < 0:
+                    cbo[s] -= x
+                else:
                     buf_s[nb] = c
                     buf_q[nb] = x
                     buf_w[nb] = t - qt[s, h]
@@ -331,6 +337,7 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
                     dt = t - last[s]
                     stats[s, ST_AREA_ON_HAND] += oh[s] * dt
                     stats[s, ST_AREA_BACKORDERS] += bo[s] * dt
+                    stats[s, ST_AREA_CUSTOMER_BACKORDERS] += cbo[s] * dt
                     stats[s, ST_DEMAND_UNITS] += q
                 last[s] = t
                 ipos[s] -= q
@@ -345,6 +352,8 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
                     oh[s] -= x
                     if measuring:
                         stats[s, ST_IMMEDIATE_UNITS] += x
+                        if child < 0:
+                            stats[s, ST_CUSTOMER_IMMEDIATE] += x
                     if child >= 0:
                         buf_s[nb] = child
                         buf_q[nb] = x
@@ -353,6 +362,8 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
                 rem = q - x
                 if rem > 0:
                     bo[s] += rem
+                    if child < 0:
+                        cbo[s] += rem
                     short[s] = 1
                     head = qhead[s]
                     merged = False
@@ -424,6 +435,7 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
         dt = horizon - last[s]
         stats[s, ST_AREA_ON_HAND] += oh[s] * dt
         stats[s, ST_AREA_BACKORDERS] += bo[s] * dt
+        stats[s, ST_AREA_CUSTOMER_BACKORDERS] += cbo[s] * dt
         stats[s, ST_MEASURED_DAYS] = horizon - warmup
     return STATUS_OK
 

@@ -13,7 +13,7 @@ Two layers:
 Definitions of the KPIs (all counted after the warm-up):
 
 * fill rate - share of the units demanded from a site (customer demand plus orders of the sites below it) that
-  are met from stock at once;
+  are met from stock at once; customer fill rate - the same for the site's own customers only;
 * cycle service - share of replenishment cycles with no demand short; a cycle ends at each receipt at the
   site (with one order outstanding at a time and unit demand this is P(lead-time demand <= R));
 * on hand, backorders - time averages in units (backorders include store orders waiting at a warehouse);
@@ -21,7 +21,7 @@ Definitions of the KPIs (all counted after the warm-up):
 * store delay - mean wait, in days, of the units a site ordered from its upstream site between the order and
   their shipment (unit-weighted; 0 at a root site);
 * annual costs - ordering (orders x order cost), holding (on hand x holding cost per unit-year), backorder
-  (units short x cost per unit, or backorders x cost per unit-year, by the case's basis).
+  (customer units short x cost per unit, or customer backorders x cost per unit-year, by the case's basis).
 """
 
 from __future__ import annotations
@@ -60,6 +60,7 @@ CONFIDENCE = 0.95
 HEAP_CAPACITY = 64  # first capacity of the pending-shipment heap per task (doubled on overflow)
 QUEUE_CAPACITY = 32  # first capacity of each site's FCFS queue per task (doubled on overflow)
 MAX_CAPACITY = 1 << 22  # give up beyond this many pending shipments / waiting orders
+NEVER_ORDERS = -(1 << 60)  # reorder point of a site with Q = 0: the position never falls to it
 
 
 def confidence_half_width(values: np.ndarray, axis: int = 0, confidence: float = CONFIDENCE) -> np.ndarray:
@@ -164,6 +165,9 @@ class NetworkSimulation:
     backorders: np.ndarray
     orders_per_day: np.ndarray
     units_short_per_day: np.ndarray
+    customer_fill_rate: np.ndarray
+    customer_backorders: np.ndarray
+    customer_units_short_per_day: np.ndarray
     store_delay: np.ndarray
     demand_per_day: np.ndarray
     raw: np.ndarray  # (K, n, S, N_STATS) counters from the kernel
@@ -254,7 +258,8 @@ def simulate_network_arrays(
         Upstream site of each site; -1 for a site fed by a supplier (unlimited supplier stock).
     reorder_point, order_quantity : array_like, (), (S,) or (n, S)
         Continuous-review policy: when the inventory position falls to R or below, order n*Q units so that it
-        lands in R+1..R+Q. R is floored and Q rounded to whole units (Q >= 1 where active and not periodic).
+        lands in R+1..R+Q. R is floored and Q rounded to whole units, at least 1 where Q > 0; Q = 0 means the
+        site never orders (a policy of not stocking: demand there is backordered for good).
     demand_mean : array_like
         Customer demand per day at each site (units); 0 for a site without customers of its own.
     lead_mean : array_like
@@ -345,11 +350,14 @@ def simulate_network_arrays(
     cont = act & ~periodic
     if np.any(cont & ~np.isfinite(r_raw)):
         raise ValueError("reorder_point: must be finite at every active continuous-review site")
-    if np.any(cont & ~(np.round(q_raw) >= 1)):
-        bad = q_raw[cont & ~(np.round(q_raw) >= 1)][0]
-        raise ValueError(f"order_quantity: must round to at least 1 at active sites; got {bad}")
+    if np.any(cont & ~(np.isfinite(q_raw) & (q_raw >= 0))):
+        bad = q_raw[cont & ~(np.isfinite(q_raw) & (q_raw >= 0))][0]
+        raise ValueError(f"order_quantity: must be finite and >= 0 at active sites; got {bad}")
+    never = cont & (q_raw == 0)
     rop = np.where(cont, np.floor(np.where(np.isfinite(r_raw), r_raw, 0.0)), 0).astype(np.int64)
-    oq = np.where(cont, np.round(np.where(np.isfinite(q_raw), q_raw, 1.0)), 1).astype(np.int64)
+    rop = np.where(never, NEVER_ORDERS, rop)
+    oq = np.where(cont & ~never, np.maximum(np.round(np.where(np.isfinite(q_raw), q_raw, 1.0)), 1), 1)
+    oq = oq.astype(np.int64)
     upto_raw = _as_grid("order_up_to", 0.0 if order_up_to is None else order_up_to, n, s_count, float)
     if np.any(act & periodic & ~np.isfinite(upto_raw)):
         raise ValueError("order_up_to: must be finite at every periodic-review site")
@@ -471,10 +479,16 @@ def _summarise(stats, act, measured, seeds, tr_items, trace_oh, trace_bo, warmup
         shp = st[..., _k.ST_SHIPPED_UNITS]
         delay = np.where(a & (shp > 0), st[..., _k.ST_WAIT_UNIT_DAYS] / shp, np.where(a, 0.0, nan))
         dpd = np.where(a, dem / measured, nan)
+        cdem = st[..., _k.ST_CUSTOMER_UNITS]
+        cimm = st[..., _k.ST_CUSTOMER_IMMEDIATE]
+        cfill = np.where(a & (cdem > 0), cimm / cdem, nan)
+        cbo = np.where(a, st[..., _k.ST_AREA_CUSTOMER_BACKORDERS] / measured, nan)
+        cshort = np.where(a, (cdem - cimm) / measured, nan)
     times = warmup + step * np.arange(n_samples) if n_samples else np.zeros(0)
     return NetworkSimulation(
         fill_rate=fill, cycle_service=cs, on_hand=oh, backorders=bo, orders_per_day=opd,
-        units_short_per_day=short,
+        units_short_per_day=short, customer_fill_rate=cfill, customer_backorders=cbo,
+        customer_units_short_per_day=cshort,
         store_delay=delay, demand_per_day=dpd, raw=st, measured_days=float(measured), seeds=seeds,
         trace_times=times, trace_on_hand=trace_oh, trace_backorders=trace_bo, trace_items=tr_items,
         retries=retries,
@@ -499,7 +513,8 @@ PLANNED_COLUMNS = {
     "backorder_cost": "backorder_cost",
     "total_cost": "total_cost",
 }
-KPI_COLUMNS = list(PLANNED_COLUMNS)
+KPI_COLUMNS = ["fill_rate", "customer_fill_rate", "cycle_service", "on_hand", "backorders", "orders_per_year",
+               "store_delay_days", "ordering_cost", "holding_cost", "backorder_cost", "total_cost"]
 DEMAND_MODELS = ("auto", "poisson", "normal_daily")
 PLANNED_SLACK = 1e-9  # a planned figure equal to an interval end counts as inside
 POISSON_DISPERSION_TOL = 1e-3  # "auto" demand: variance up to (1 + this) x mean counts as Poisson
@@ -598,9 +613,11 @@ def run_simulation(
     Notes
     -----
     Annual figures use ``days_per_year``: orders per year = orders per day x days_per_year; ordering cost =
-    orders per year x order cost; holding cost = mean on hand x holding cost; backorder cost = units short
-    per year x cost per unit (basis ``per_unit``) or mean backorders x cost per unit-year
-    (``per_unit_year``), 0 where no backorder cost is given. Costs are computed per replication, then
+    orders per year x order cost; holding cost = mean on hand x holding cost; backorder cost = customer units
+    short per year x cost per unit (basis ``per_unit``) or mean customer backorders x cost per unit-year
+    (``per_unit_year``), 0 where no backorder cost is given. Store orders waiting at a warehouse carry no
+    backorder cost of their own (they cost through the stores' shortages); they count in the warehouse's
+    ``fill_rate`` and ``backorders``. Costs are computed per replication, then
     averaged, so each carries its own interval.
 
     References
@@ -693,6 +710,7 @@ def run_simulation(
     bcost = table["backorder_cost"].fillna(0.0).to_numpy(float)
     per_rep = {
         "fill_rate": rows(sim.fill_rate),
+        "customer_fill_rate": rows(sim.customer_fill_rate),
         "cycle_service": rows(sim.cycle_service),
         "on_hand": rows(sim.on_hand),
         "backorders": rows(sim.backorders),
@@ -701,10 +719,11 @@ def run_simulation(
     }
     per_rep["ordering_cost"] = per_rep["orders_per_year"] * order_cost
     per_rep["holding_cost"] = per_rep["on_hand"] * hold
+    # backorder cost on customer demand only: store orders waiting at a warehouse cost through the stores
     if settings.backorder_basis == "per_unit":
-        per_rep["backorder_cost"] = rows(sim.units_short_per_day) * dpy * bcost
+        per_rep["backorder_cost"] = rows(sim.customer_units_short_per_day) * dpy * bcost
     else:
-        per_rep["backorder_cost"] = per_rep["backorders"] * bcost
+        per_rep["backorder_cost"] = rows(sim.customer_backorders) * bcost
     per_rep["total_cost"] = per_rep["ordering_cost"] + per_rep["holding_cost"] + per_rep["backorder_cost"]
 
     out = pd.DataFrame({"site": table["site"].to_numpy(object), "item": table["item"].to_numpy(object)})
@@ -775,8 +794,9 @@ def simulate_policies(itemsites, policies, settings, *, years: float = 5.0, warm
     -------
     DataFrame
         ``site, item, reorder_point, order_quantity, demand_model, demand_per_year`` then for each KPI in
-        ``fill_rate, cycle_service, on_hand, backorders, orders_per_year, store_delay_days, ordering_cost,
-        holding_cost, backorder_cost, total_cost`` its mean and ``<kpi>_ci`` (95% half-width), then
+        ``fill_rate, customer_fill_rate, cycle_service, on_hand, backorders, orders_per_year,
+        store_delay_days, ordering_cost, holding_cost, backorder_cost, total_cost`` its mean and ``<kpi>_ci``
+        (95% half-width), then
         ``planned_<kpi>`` where the policies give it, and ``outside_interval``.
 
     Examples

@@ -187,6 +187,19 @@ def test_normal_daily_buckets_mean():
     assert _within(sim.mean("demand_per_day"), sim.half_width("demand_per_day"), 10.0, 1e-3).all()
 
 
+def test_zero_order_quantity_never_orders_and_small_ones_round_up():
+    """Q = 0 (a plan's 'no demand: no stock'): the site never orders; demand there waits for good.
+    Q = 0.3 is simulated as one unit."""
+    sim = simulate_network_arrays([-1, 0, 0], [5, 0, 0], [10, 0, 0.3], demand_mean=[0.0, 0.5, 0.5],
+                                  lead_mean=[2.0, 1.0, 1.0], n_items=1, horizon_days=2000.0, replications=2,
+                                  seed=1)
+    assert np.all(sim.orders_per_day[:, 0, 1] == 0) and np.all(sim.on_hand[:, 0, 1] == 0)
+    assert np.all(sim.fill_rate[:, 0, 1] == 0)
+    # backorders grow linearly: time average about half the final count, 0.5 a day over 2000 days
+    assert np.allclose(sim.backorders[:, 0, 1], 0.5 * 2000 / 2, rtol=0.1)
+    assert np.allclose(sim.orders_per_day[:, 0, 2], 0.5, rtol=0.1)  # one unit per demand
+
+
 def test_zero_demand_item_is_quiet():
     sim = simulate_network_arrays([-1, 0], [2, 1], [5, 2], demand_mean=[0.0, 0.0], lead_mean=[3.0, 1.0],
                                   n_items=1, horizon_days=1000.0, replications=2, seed=1)
@@ -197,7 +210,7 @@ def test_zero_demand_item_is_quiet():
 
 def test_rejects_bad_inputs():
     with pytest.raises(ValueError, match="order_quantity"):
-        simulate_network_arrays([-1], 2, 0, demand_mean=1.0, lead_mean=1.0, n_items=1, horizon_days=10.0)
+        simulate_network_arrays([-1], 2, -1, demand_mean=1.0, lead_mean=1.0, n_items=1, horizon_days=10.0)
     with pytest.raises(ValueError, match="cycle"):
         simulate_network_arrays([1, 0], 2, 1, demand_mean=1.0, lead_mean=1.0, n_items=1, horizon_days=10.0)
     with pytest.raises(ValueError, match="warmup_days"):
@@ -449,6 +462,10 @@ def test_simulate_policies_network_flows(case_writer):
                       key.loc[("s1", "a"), "demand_per_year"] + key.loc[("s2", "a"), "demand_per_year"],
                       rtol=0.01)
     assert key.loc[("wh", "a"), "store_delay_days"] == 0.0
+    # waiting store orders are no customer shortage: no backorder cost at the warehouse, whatever it owes
+    assert (key.loc["wh", "backorders"] > 0).any() and (key.loc["wh", "backorder_cost"] == 0).all()
+    assert key.loc["wh", "customer_fill_rate"].isna().all()
+    assert np.allclose(key.loc["s1", "customer_fill_rate"], key.loc["s1", "fill_rate"])
     assert (key.loc[[("s1", "a"), ("s2", "a")], "store_delay_days"] >= 0).all()
     assert set(res.traces["site"]) == {"wh", "s1", "s2"} and set(res.traces["item"]) == {"a"}
     assert "planned_fill_rate" not in out and (out["outside_interval"] == "").all()
@@ -481,14 +498,19 @@ def test_rqnet_simulate_refuses_bad_policies_and_foreign_folders(case_writer, tm
     from optimiser.cli import main
 
     folder = case_writer()
-    rows = [("wh", "a", 200, 150, {}), ("wh", "b", 40, 30, {}), ("wh", "c", 5, 0.2, {}),
-            ("s1", "a", 30, 40, {}), ("s1", "b", 8, 10, {}), ("s2", "a", 30, 30, {}), ("s2", "c", 1, 2, {})]
+    rows = [("wh", "a", 200, 150, {}), ("wh", "b", 40, 30, {}), ("wh", "c", 5, 3, {}),
+            ("s1", "a", 30, 40, {}), ("s1", "b", 8, 10, {}), ("s2", "a", 30, 30, {})]
     out = tmp_path / "sim"
     args = ["simulate", str(folder), "--policies", str(_policies_file(tmp_path, rows)), "--out", str(out),
             "--years", "1", "--replications", "2", "-q"]
-    assert main(args) == 2  # Q = 0.2 is no whole unit
+    assert main(args) == 2  # s2/c has no policy
     assert not out.exists()
-    rows[2] = ("wh", "c", 5, 3, {})
+    rows.append(("s2", "c", 1, 2, {}))
+    args[args.index("--years") + 1] = "0"
+    args[args.index("--policies") + 1] = str(_policies_file(tmp_path, rows))
+    assert main(args) == 2  # no simulated time
+    assert not out.exists()
+    args[args.index("--years") + 1] = "1"
     foreign = tmp_path / "mine"
     foreign.mkdir()
     (foreign / "notes.txt").write_text("keep me")
