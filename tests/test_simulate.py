@@ -178,6 +178,26 @@ def test_compound_demand_moments():
     assert _within(sim.mean("demand_per_day"), sim.half_width("demand_per_day"), 3.0).all()
 
 
+def test_compound_base_stock_matches_negative_binomial():
+    """Base stock S (Q = 1) under compound Poisson demand: the position is always S, so net stock = S - D(L)
+    with D(L) negative binomial (logarithmic sizes; Quenouille, Biometrics 5, 1949): NB(r, p) with
+    r = -nu L / ln(1 - theta), p = 1 - theta. Exact E[on hand] and E[backorders] from scipy.stats.nbinom."""
+    mean, sd, lead, s_base = 1.5, 2.5, 4.0, 10
+    sim = simulate_network_arrays([-1], s_base - 1, 1, demand_mean=mean, demand_sd=sd,
+                                  demand_model=DEMAND_COMPOUND, lead_mean=lead, n_items=1,
+                                  horizon_days=60_000.0, warmup_days=50.0, replications=6, seed=21)
+    rate, theta = compound_parameters(np.array([mean]), np.array([sd]))
+    r = -rate[0] * lead / np.log1p(-theta[0])
+    k = np.arange(400)
+    pmf = stats.nbinom.pmf(k, r, 1 - theta[0])
+    assert np.isclose(np.sum(k * pmf), mean * lead) and np.isclose(np.sum(k * k * pmf) - (mean * lead) ** 2,
+                                                                    sd * sd * lead)
+    on_hand = np.sum(np.maximum(s_base - k, 0) * pmf)
+    back = np.sum(np.maximum(k - s_base, 0) * pmf)
+    assert _within(sim.mean("on_hand"), sim.half_width("on_hand"), on_hand).all()
+    assert _within(sim.mean("backorders"), sim.half_width("backorders"), back).all()
+
+
 def test_normal_daily_buckets_mean():
     """Normal daily demand rounded to whole units (common practice): with sd small against the mean the
     rounding and truncation keep the mean (half-integers are measure zero)."""
