@@ -1,0 +1,172 @@
+"""Tests of optimiser/grouping.py: families from a case, costs checked independently, the group command."""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from models import grouping_milp as gm
+from models import joint
+from optimiser.case import load_case
+from optimiser.cli import main
+from optimiser.grouping import FAMILY_COLUMNS, GROUP_COLUMNS, group_case
+
+# invented case: one shop buying from two suppliers
+ONE_SITE = {
+    "case.toml": """\
+        name = "grouping test shop"
+        currency = "EUR"
+        days_per_year = 360
+        holding_rate = 0.25
+        distribution = "normal"
+
+        [service]
+        mode = "cost"
+        backorder_basis = "per_unit"
+        """,
+    "sites.csv": """\
+        site,upstream,transit_days,transit_days_sd,delivery_cost
+        shop,,,,
+        """,
+    "suppliers.csv": """\
+        supplier,lead_days,lead_days_sd,order_cost,line_cost,max_volume,max_weight,min_order_value
+        alpha,5,1,120,4,,,
+        beta,10,0,90,2,3,,
+        """,
+    "items.csv": """\
+        item,supplier,unit_cost,holding_cost,backorder_cost,pack_size,volume,weight,distribution,line_cost,shelf_life_days
+        a1,alpha,10,,20,,,,,,
+        a2,alpha,4,,8,,,,,9,
+        a3,alpha,30,,60,,,,,,20
+        b1,beta,12,,25,,0.01,,,,
+        b2,beta,7,,15,,0.02,,,,
+        b3,beta,5,,10,,0.005,,,,
+        """,
+    "demand.csv": """\
+        site,item,daily_mean,daily_sd
+        shop,a1,6,2
+        shop,a2,3,1.5
+        shop,a3,1,0.8
+        shop,b1,8,3
+        shop,b2,5,2
+        shop,b3,0,0
+        """,
+}
+
+
+@pytest.fixture
+def shop(case_writer):
+    return load_case(case_writer(ONE_SITE))
+
+
+def test_families_costs_and_columns(shop):
+    res = group_case(shop)
+    assert list(res.groups.columns) == GROUP_COLUMNS
+    assert list(res.families.columns) == FAMILY_COLUMNS
+    fam = res.families.set_index("family")
+    assert set(fam.index) == {"shop/alpha", "shop/beta"}
+    assert (fam["status"] == "optimal").all()
+    # savings = independent - grouped, and the items' annual costs add up to the family's grouped cost
+    np.testing.assert_allclose(fam["savings"], fam["independent_cost"] - fam["grouped_cost"], rtol=1e-12)
+    per = res.groups.groupby("family")["annual_cost"].sum()
+    np.testing.assert_allclose(per[fam.index], fam["grouped_cost"], rtol=1e-9)
+    # interval = base cycle x multiple; the zero-demand item is listed but not ordered
+    g = res.groups.set_index("item")
+    ordered = g[g["status"] == "optimal"]
+    np.testing.assert_allclose(ordered["order_interval_days"],
+                               ordered["base_cycle_days"] * ordered["cycle_multiple"].astype(float))
+    assert g.loc["b3", "status"] == "no demand" and g.loc["b3", "annual_cost"] == 0.0
+
+
+def test_family_inputs_follow_the_case(shop):
+    # alpha family without safety stock effects checked against the deterministic model: recompute the
+    # grouped cost by hand from the case numbers (line_cost of a2 overrides the supplier's 4; shelf life of
+    # a3 = 20 days caps its interval; holding = 0.25 x unit cost; D = 360 x daily mean)
+    res = group_case(shop)
+    g = res.groups.set_index("item")
+    assert g.loc["a3", "order_interval_days"] <= 20 * (1 + 1e-9)
+    T = g.loc["a1", "base_cycle_days"] / 360
+    k = g.loc[["a1", "a2", "a3"], "cycle_multiple"].to_numpy(dtype=float)
+    D = np.array([6.0, 3.0, 1.0]) * 360
+    h = 0.25 * np.array([10.0, 4.0, 30.0])
+    s = np.array([4.0, 9.0, 4.0])
+    det = float(joint.joint_cost(T, k, 120.0, s, h * D))
+    var = np.array([2.0, 1.5, 0.8]) ** 2 * 360
+    ssc, _, _ = gm.periodic_review_cost(T * k, D, var, 5 / 360, 1 / 360, h, [20.0, 8.0, 60.0])
+    fam = res.families.set_index("family")
+    assert fam.loc["shop/alpha", "grouped_cost"] == pytest.approx(det + float(ssc.sum()), rel=1e-9)
+
+
+def test_capacity_from_suppliers_csv_binds(shop):
+    res = group_case(shop)
+    g = res.groups.set_index("item")
+    b = g.loc[["b1", "b2"]]
+    T = b["base_cycle_days"].iloc[0] / 360
+    k = b["cycle_multiple"].to_numpy(dtype=float)
+    load = float(np.sum(np.array([8.0, 5.0]) * 360 * np.array([0.01, 0.02]) * k))
+    assert load * T <= 3.0 * (1 + 1e-9)
+    fam = res.families.set_index("family")
+    assert "capacity_volume" in fam.loc["shop/beta", "binding"]
+
+
+def test_independent_cost_is_the_single_site_optimum(shop):
+    # ordering a1 alone: (R, Q) cost optimum by a dense scan with the Hadley-Whitin (1963) cost on normal
+    # lead-time demand (formula in the module's references), order cost 120 + 4
+    res = group_case(shop)
+    ind = float(res.groups.set_index("item").loc["a1", "independent_cost"])
+    D, A, h, b = 6 * 360.0, 124.0, 2.5, 20.0
+    mu = 6 * 5.0
+    sd = math.sqrt(5 * 2.0**2 + 6.0**2 * 1.0**2)
+    from scipy.stats import norm
+
+    Q = np.linspace(50, 800, 1501)[:, None]
+    R = np.linspace(mu, mu + 5 * sd, 1501)[None, :]
+    z = (R - mu) / sd
+    loss = sd * (norm.pdf(z) - z * norm.sf(z))
+    cost = h * (Q / 2 + R - mu) + A * D / Q + b * D * loss / Q
+    assert ind == pytest.approx(float(cost.min()), rel=2e-4)
+
+
+def test_unreachable_minimum_order_is_reported(case_writer):
+    files = dict(ONE_SITE)
+    files["suppliers.csv"] = """\
+        supplier,lead_days,lead_days_sd,order_cost,line_cost,max_volume,max_weight,min_order_value
+        alpha,5,1,120,4,,,
+        beta,10,0,90,2,3,,1000000
+        """
+    res = group_case(load_case(case_writer(files)))
+    fam = res.families.set_index("family")
+    assert fam.loc["shop/beta", "status"] == "infeasible"
+    assert "min_order_value" in fam.loc["shop/beta", "message"]
+    assert any("shop/beta" in w and "infeasible" in w for w in res.warnings)
+    assert res.totals()["solved"] == 1
+
+
+def test_group_command_writes_outputs(case_writer, tmp_path):
+    folder = case_writer(ONE_SITE)
+    out = tmp_path / "out"
+    assert main(["group", str(folder), "--out", str(out), "--quiet"]) == 0
+    groups = pd.read_csv(out / "groups.csv")
+    assert set(GROUP_COLUMNS) <= set(groups.columns)
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["tool"] == "rqnet" and summary["command"] == "group"
+    for fam in summary["families"]:
+        assert {"independent_cost", "grouped_cost", "savings", "binding"} <= set(fam)
+        assert fam["savings"] == pytest.approx(fam["independent_cost"] - fam["grouped_cost"], rel=1e-6)
+    # a folder holding files rqnet did not write is refused (exit 2) and left as it was
+    foreign = tmp_path / "foreign"
+    foreign.mkdir()
+    (foreign / "notes.txt").write_text("mine")
+    assert main(["group", str(folder), "--out", str(foreign), "--quiet"]) == 2
+    assert [p.name for p in foreign.iterdir()] == ["notes.txt"]
+
+
+def test_deliveries_option_adds_store_families(case_writer):
+    res = group_case(load_case(case_writer()), deliveries=True)  # the shared two-level test case
+    kinds = dict(zip(res.families["family"], res.families["kind"], strict=True))
+    assert kinds.get("s1<-wh") == "delivery" and kinds.get("s2<-wh") == "delivery"
+    assert (res.families["status"].isin(["optimal", "no demand"])).all()
