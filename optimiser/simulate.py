@@ -579,7 +579,10 @@ def run_simulation(
         From :func:`optimiser.itemsites.build_itemsites` (columns ``site, item, upstream, daily_mean,
         daily_sd, lead_days, lead_days_sd, order_cost, holding_cost, backorder_cost``).
     policies : DataFrame
-        ``site, item, reorder_point, order_quantity`` for every row of ``itemsites``; planned figures in the
+        ``site, item, reorder_point, order_quantity`` for every row of ``itemsites``, or, for items under a
+        joint replenishment cycle, ``order_interval_days, order_up_to`` (periodic review every T days from
+        day 0, so items whose intervals are multiples of a base cycle are reviewed together; rows where both
+        are finite and T > 0 use them, the others (R, Q)); planned figures in the
         ``policies.csv`` columns (``fill_rate, cycle_service, expected_on_hand, expected_backorders,
         orders_per_year, expected_delay_days``, costs) are copied beside the simulated ones where present.
     settings : Settings
@@ -632,9 +635,14 @@ def run_simulation(
     missing = [c for c in need if c not in itemsites.columns]
     if missing:
         raise ValueError(f"itemsites: missing columns {missing}")
-    for c in ("site", "item", "reorder_point", "order_quantity"):
+    for c in ("site", "item"):
         if c not in policies.columns:
             raise ValueError(f"policies: missing column {c!r}")
+    has_rq = {"reorder_point", "order_quantity"} <= set(policies.columns)
+    has_periodic = {"order_interval_days", "order_up_to"} <= set(policies.columns)
+    if not (has_rq or has_periodic):
+        raise ValueError("policies: need columns reorder_point and order_quantity, or order_interval_days "
+                         "and order_up_to")
     if demand_model not in DEMAND_MODELS:
         raise ValueError(f"demand_model: must be one of {DEMAND_MODELS}; got {demand_model!r}")
     if not (np.isfinite(years) and years > 0):
@@ -676,8 +684,22 @@ def run_simulation(
         model = np.full((n, s_count), DEMAND_POISSON)
     else:
         model = np.full((n, s_count), DEMAND_NORMAL_DAILY)
-    rop = grid(merged["reorder_point"], fill=0.0)
-    oq = grid(merged["order_quantity"], fill=1.0)
+    nan_col = pd.Series(np.full(len(merged), np.nan))
+    r_col = merged["reorder_point"] if has_rq else nan_col
+    q_col = merged["order_quantity"] if has_rq else nan_col
+    t_col = pd.to_numeric(merged["order_interval_days"], errors="coerce") if has_periodic else nan_col
+    s_col = pd.to_numeric(merged["order_up_to"], errors="coerce") if has_periodic else nan_col
+    periodic = (np.isfinite(t_col.to_numpy(float)) & (t_col.to_numpy(float) > 0)
+                & np.isfinite(s_col.to_numpy(float)))
+    lacking_rq = ~periodic & ~(np.isfinite(r_col.to_numpy(float)) & np.isfinite(q_col.to_numpy(float)))
+    if lacking_rq.any():
+        r = merged[lacking_rq].iloc[0]
+        raise ValueError(f"policies: item {r['item']!r} at site {r['site']!r} has neither a reorder point "
+                         "and order quantity nor an order interval and order-up-to level")
+    rop = grid(np.where(periodic, 0.0, r_col.to_numpy(float)), fill=0.0)
+    oq = grid(np.where(periodic, 1.0, q_col.to_numpy(float)), fill=1.0)
+    review = grid(np.where(periodic, t_col.to_numpy(float), 0.0))
+    upto = grid(np.where(periodic, s_col.to_numpy(float), 0.0))
     lt_m = grid(table["lead_days"].fillna(0.0))
     lt_s = grid(table["lead_days_sd"].fillna(0.0))
 
@@ -696,7 +718,8 @@ def run_simulation(
 
     sim = simulate_network_arrays(
         parent, rop, oq, demand_mean=dmean, demand_sd=dsd, demand_model=model, lead_mean=lt_m, lead_sd=lt_s,
-        active=active, horizon_days=horizon, warmup_days=warm, replications=replications, seed=seed,
+        review_period=review, order_up_to=upto, active=active, horizon_days=horizon, warmup_days=warm,
+        replications=replications, seed=seed,
         partial_shipments=partial_shipments, orders_cross=orders_cross,
         trace_items=[item_index[t] for t in tr], trace_step_days=trace_step_days, progress=report,
     )
@@ -727,8 +750,10 @@ def run_simulation(
     per_rep["total_cost"] = per_rep["ordering_cost"] + per_rep["holding_cost"] + per_rep["backorder_cost"]
 
     out = pd.DataFrame({"site": table["site"].to_numpy(object), "item": table["item"].to_numpy(object)})
-    out["reorder_point"] = merged["reorder_point"].to_numpy(float)
-    out["order_quantity"] = merged["order_quantity"].to_numpy(float)
+    out["reorder_point"] = np.where(periodic, np.nan, r_col.to_numpy(float))
+    out["order_quantity"] = np.where(periodic, np.nan, q_col.to_numpy(float))
+    out["order_interval_days"] = np.where(periodic, t_col.to_numpy(float), np.nan)
+    out["order_up_to"] = np.where(periodic, s_col.to_numpy(float), np.nan)
     names = {DEMAND_POISSON: "poisson", DEMAND_COMPOUND: "compound_poisson",
              DEMAND_NORMAL_DAILY: "normal_daily"}
     out["demand_model"] = [names[int(m)] for m in model[ii, jj]]
@@ -955,6 +980,9 @@ def add_arguments(parser) -> None:
                         help="CSV with site, item, reorder_point, order_quantity for every stocked item-site")
     parser.add_argument("--out", metavar="DIR", type=Path, required=True,
                         help="folder for the results; created, or replaced if it holds earlier rqnet results")
+    parser.add_argument("--groups", metavar="FILE", type=Path, default=None,
+                        help="groups.csv written by 'rqnet group': its items are reviewed every "
+                        "order_interval_days and ordered up to order_up_to instead of their --policies row")
     parser.add_argument("--years", metavar="Y", type=float, default=5.0,
                         help="simulated years per replication after the warm-up (default 5)")
     parser.add_argument("--warmup-years", metavar="W", type=float, default=0.5,
@@ -974,6 +1002,35 @@ def add_arguments(parser) -> None:
                         help="plot day-by-day stock of this item at every site (repeatable; default: the "
                         "item with the largest demand)")
     parser.add_argument("--no-plots", action="store_true", help="skip the PNG charts")
+
+
+def _merge_groups(given, path: Path, itemsites):
+    """Add ``order_interval_days, order_up_to`` from a groups file to the policies frame."""
+    import pandas as pd
+
+    try:
+        groups = pd.read_csv(path, dtype={"site": str, "item": str}, keep_default_na=False, na_values=[""])
+    except (OSError, ValueError) as exc:
+        raise ValueError(f"{path.name}: cannot read it ({exc})") from exc
+    groups.columns = [str(c).strip() for c in groups.columns]
+    need = ["site", "item", "order_interval_days", "order_up_to"]
+    missing = [c for c in need if c not in groups.columns]
+    if missing:
+        raise ValueError(f"{path.name}: missing column(s) {', '.join(missing)}")
+    groups = groups[need].copy()
+    for c in ("order_interval_days", "order_up_to"):
+        groups[c] = pd.to_numeric(groups[c], errors="coerce")
+    groups = groups[np.isfinite(groups["order_interval_days"]) & np.isfinite(groups["order_up_to"])]
+    stocked = set(zip(itemsites["site"], itemsites["item"], strict=True))
+    for row, (site, item) in enumerate(zip(groups["site"], groups["item"], strict=True)):
+        if (site, item) not in stocked:
+            raise ValueError(f"{path.name}, row {groups.index[row] + 2}: item {item!r} is not stocked at "
+                             f"site {site!r} in this case")
+    if groups.duplicated(["site", "item"]).any():
+        raise ValueError(f"{path.name}: more than one row for some site and item")
+    if (groups["order_interval_days"] <= 0).any() or (groups["order_up_to"] < 0).any():
+        raise ValueError(f"{path.name}: order_interval_days must be > 0 and order_up_to >= 0")
+    return given.merge(groups, on=["site", "item"], how="left")
 
 
 def run(args) -> int:
@@ -999,6 +1056,14 @@ def run(args) -> int:
         extra["item"] = extra["item"].str.strip()
         given = given.merge(extra.drop_duplicates(["site", "item"]), on=["site", "item"], how="left")
     itemsites = build_itemsites(case)
+    if args.groups is not None:
+        say(f"reading groups {args.groups}")
+        try:
+            given = _merge_groups(given, args.groups, itemsites)
+        except ValueError as exc:
+            print(f"rqnet: cannot simulate: {exc}", file=sys.stderr)
+            print("rqnet: nothing was written", file=sys.stderr)
+            return EXIT_BAD_INPUT
     trace = args.trace
     if trace is None and len(itemsites):
         trace = [str(itemsites.groupby("item")["annual_demand"].max().idxmax())]

@@ -538,3 +538,30 @@ def test_rqnet_simulate_refuses_bad_policies_and_foreign_folders(case_writer, tm
             "--years", "1", "--replications", "2", "-q"]
     assert main(args) == 2
     assert (foreign / "notes.txt").read_text() == "keep me"
+
+
+def test_rqnet_simulate_with_groups(case_writer, tmp_path):
+    """Items of a joint replenishment group are reviewed every order_interval_days (from day 0) and ordered
+    up to order_up_to. With store orders reaching the warehouse every few days, every review orders:
+    orders per year = days_per_year / interval (360 / 7 and 360 / 14)."""
+    from optimiser.cli import main
+
+    folder = case_writer()
+    rows = [("wh", "a", 200, 150, {}), ("wh", "b", 40, 30, {}), ("wh", "c", 5, 3, {}),
+            ("s1", "a", 30, 40, {}), ("s1", "b", 8, 10, {}), ("s2", "a", 30, 30, {}), ("s2", "c", 1, 2, {})]
+    pol = _policies_file(tmp_path, rows)
+    groups = tmp_path / "groups.csv"
+    groups.write_text("family,site,item,order_interval_days,order_up_to,status\n"
+                      "f,wh,a,7,400,optimal\nf,wh,b,14,120,optimal\n", encoding="utf-8")
+    out = tmp_path / "sim"
+    args = ["simulate", str(folder), "--policies", str(pol), "--groups", str(groups), "--out", str(out),
+            "--years", "10", "--replications", "3", "--seed", "2", "-q", "--no-plots"]
+    assert main(args) == 0
+    frame = pd.read_csv(out / "simulation.csv").set_index(["site", "item"])
+    assert frame.loc[("wh", "a"), "order_interval_days"] == 7
+    assert np.isnan(frame.loc[("wh", "a"), "reorder_point"])
+    assert np.isnan(frame.loc[("wh", "c"), "order_interval_days"])
+    assert abs(frame.loc[("wh", "a"), "orders_per_year"] - 360 / 7) < 0.3
+    assert abs(frame.loc[("wh", "b"), "orders_per_year"] - 360 / 14) < 0.3
+    groups.write_text("family,site,item,order_interval_days,order_up_to\nf,s2,b,7,40\n", encoding="utf-8")
+    assert main(args) == 2  # b is not stocked at s2
