@@ -293,6 +293,7 @@ class WarehouseDemand:
     stream_long: np.ndarray | None = None
     stream_const: np.ndarray | None = None
     own_var_rate: np.ndarray | None = None
+    order_size: np.ndarray | None = None
 
     def pmf_of(self, row: int) -> np.ndarray:
         """The pmf held for one discrete row (empty array for a normal row)."""
@@ -427,6 +428,8 @@ def warehouse_demand(
                            rate=rate, variance_rate=variance_rate, tail=tail, method=method,
                            stream_short=stream_short, stream_long=stream_long, stream_const=stream_const,
                            own_var_rate=own_sd**2,
+                           order_size=np.where(rate > 0, (np.where(active, store_mean * store_q, 0.0).sum(axis=1)
+                                                          + own_mean) / np.where(rate > 0, rate, 1.0), 1.0),
                            lead_sd=lead_sd.copy())
 
 
@@ -495,6 +498,7 @@ class WarehouseState:
     expected_backorders: np.ndarray
     backorders_second_moment: np.ndarray
     stockout_probability: np.ndarray
+    wait_probability: np.ndarray
     negative_share: np.ndarray
     negative_depth: np.ndarray
     negative_square: np.ndarray
@@ -557,7 +561,8 @@ class _DiscreteLoss:
         s1 = s1 + np.where(has, t1, 0.0)
         s2 = s2 + np.where(has, t2, 0.0)
         sgt = sgt + np.where(has, tg, 0.0)
-        return s1 / m, s2 / m, sgt / m, k / m, -sy / m, sy2 / m
+        kle = np.clip(np.floor_divide(-r0, g), 0, m)   # k >= 1 with r0 + g k <= 0 (no stock ahead)
+        return s1 / m, s2 / m, sgt / m, kle / m, -sy / m, sy2 / m
 
 
 def _strided_cumsum(a: np.ndarray, g: int) -> np.ndarray:
@@ -616,6 +621,8 @@ def warehouse_moments(demand: WarehouseDemand, reorder_point: np.ndarray, order_
     neg_share = np.zeros(n)
     neg_depth = np.zeros(n)
     neg_sq = np.zeros(n)
+    wait = np.zeros(n)
+    order_size = np.where(demand.rate > 0, demand.order_size, 1.0) if demand.order_size is not None else np.ones(n)
     ltd_var = np.maximum(np.asarray(demand.var, dtype=float), 0.0).copy()
     eip = np.where(demand.discrete, r0 + (q0 + demand.step) / 2.0, r0 + q0 / 2.0)
     d = demand.discrete
@@ -629,6 +636,8 @@ def warehouse_moments(demand: WarehouseDemand, reorder_point: np.ndarray, order_
             eb[rows] = s1
             eb2[rows] = s2
             stockout[rows] = sg
+            shift = np.maximum(np.rint(order_size[rows]), 1.0)
+            wait[rows] = loss.lattice_sums(r0[rows] - shift, q0[rows])[2]
     c = ~d
     if np.any(c):
         mu = demand.mean[c]
@@ -644,6 +653,10 @@ def warehouse_moments(demand: WarehouseDemand, reorder_point: np.ndarray, order_
         eb2[c] = np.where(small, sd**2 * a2, sd**3 * (a3 - b3) / (3.0 * qs))
         # P(X > y) averaged: sd (H1(z_R) - H1(z_RQ)) / Q0
         stockout[c] = np.where(small, special.ndtr(-za), sd * (a1 - b1) / qs)
+        sh = order_size[c]
+        wa = normal_loss_moments(za - sh / sd)[0]
+        wb = normal_loss_moments(zb - sh / sd)[0]
+        wait[c] = np.where(small, special.ndtr(-(za - sh / sd)), sd * (wa - wb) / qs)
         # inventory positions below zero: share of (R0, R0 + Q0] and mean of |y| there (times the share)
         lo_, hi_ = r0[c], np.minimum(r0[c] + qq, 0.0)
         width_ = np.maximum(hi_ - lo_, 0.0)
@@ -657,11 +670,12 @@ def warehouse_moments(demand: WarehouseDemand, reorder_point: np.ndarray, order_
     return WarehouseState(expected_on_hand=on_hand, expected_backorders=eb, backorders_second_moment=eb2,
                           negative_share=neg_share, negative_depth=neg_depth, negative_square=neg_sq,
                           ltd_var=ltd_var,
-                          stockout_probability=np.clip(stockout, 0.0, 1.0))
+                          stockout_probability=np.clip(stockout, 0.0, 1.0),
+                          wait_probability=np.clip(wait, 0.0, 1.0))
 
 
 def arrival_variance(demand: WarehouseDemand, window: np.ndarray) -> np.ndarray:
-    """Variance of the units arriving at the warehouse in a window of given length, per item.
+    """Variance of the demand noise arriving at the warehouse in a window of given length, per item.
 
     Parameters
     ----------
@@ -672,26 +686,26 @@ def arrival_variance(demand: WarehouseDemand, window: np.ndarray) -> np.ndarray:
     Returns
     -------
     ndarray, shape (n,)
+        ``(sum_i s_i**2 + s0**2) w``: the stores' customer-demand variance rates (and the warehouse's own).
 
     Examples
     --------
     >>> wd = warehouse_demand(np.array([[0.5]]), np.sqrt([[0.5]]), np.array([[4]]), np.array([[True]]),
     ...                       np.array([2.0]), np.array([0.0]))
-    >>> float(arrival_variance(wd, np.array([1.0]))[0]), float(arrival_variance(wd, np.array([100.0]))[0])
-    (2.0, 52.5)
+    >>> round(float(arrival_variance(wd, np.array([3.0]))[0]), 12)
+    1.5
 
     Notes
     -----
-    Store ``i`` sends batches of ``Q_i``. Over a short window its orders are a Poisson stream of batches:
-    variance ``lambda_i Q_i w``; over a long one the batching only adds a bounded term to the demand variance:
-    ``s_i**2 w + E r (Q_i - r)`` with ``r`` uniform, i.e. ``(Q_i**2 - 1) / 6`` for counts and ``Q_i**2 / 6``
-    for continuous demand. The smaller of the two is used, plus the warehouse's own customers ``s0**2 w``.
+    Only the demand noise counts, not the batching of the store orders: which batch arrives during a wait
+    depends on the phase of the stores' order cycles, and so does the wait itself; the phase is therefore not
+    noise independent of the wait. For one-for-one Poisson stores this is ``lambda0 w``, the exact
+    distributional Little's law; for regular batch streams it tends to the fluid limit ``W = B0 / lambda0``.
     """
-    w = np.asarray(window, dtype=float)[:, None]
-    if demand.stream_short is None:
-        return demand.variance_rate * w[:, 0]
-    per = np.minimum(demand.stream_short * w, demand.stream_long * w + demand.stream_const)
-    return per.sum(axis=1) + demand.own_var_rate * w[:, 0]
+    w = np.asarray(window, dtype=float)
+    if demand.stream_long is None:
+        return demand.variance_rate * w
+    return (demand.stream_long.sum(axis=1) + demand.own_var_rate) * w
 
 
 def delay_moments(state: WarehouseState, demand: WarehouseDemand) -> tuple[np.ndarray, np.ndarray]:
@@ -723,10 +737,10 @@ def delay_moments(state: WarehouseState, demand: WarehouseDemand) -> tuple[np.nd
 
     * ``y >= 0``: the order is filled by stock ordered ``y`` units earlier; the backorders are the units that
       arrived during the oldest order's wait, so ``E[B^2 | y] = E v(W) + lambda0**2 E[W^2 | y]`` with ``v(w)``
-      the variance of the arrivals in a window ``w`` (:func:`arrival_variance`, taken at the mean wait of
-      these points). For Poisson unit demand ``v(w) = lambda0 w`` and this is the distributional Little's law,
+      the variance of the demand noise in a window ``w`` (:func:`arrival_variance`, at the mean wait of these
+      points). For Poisson unit demand ``v(w) = lambda0 w`` and this is the distributional Little's law,
       exact, giving the Svoronos & Zipkin (1988) delay variance;
-    * ``y < 0``: the order waits for a warehouse order not yet placed: ``W = L0 + T_|y|`` with ``T_k`` the time
+    * ``y <= 0``: the order waits for a warehouse order not yet placed: ``W = L0 + T_|y|`` with ``T_k`` the time
       for the warehouse demand to reach ``k`` more units, ``E T = k / lambda0``. ``T`` is made of the stores'
       own future demand: given the ``k`` units, a store's share of them is binomial, whose variance does not
       exceed its mean, so ``T`` is taken at its mean (no variance of its own). For one-for-one Poisson stores
@@ -1037,29 +1051,32 @@ def _warehouse_rows(inp: TwoLevelInputs, demand: WarehouseDemand, state: Warehou
     return ordering, holding, back, fill
 
 
-def _optimise_stores(inp: TwoLevelInputs, ew, vw, store_q):
-    from models import single_site as ss
-
-    rows, mean, sd, codes = _store_block(inp, ew, vw)
+def _store_args(inp: TwoLevelInputs, ew, vw, pw):
     act = inp.store_active
-    pol = ss.optimise_policy(
-        inp.store_mean[act] * inp.days_per_year, mean, sd, inp.store_order_cost[act], inp.store_holding_cost[act],
-        distribution=codes, mode=inp.mode, backorder_cost=inp.store_backorder_cost[act],
-        backorder_basis=inp.backorder_basis, target=inp.store_target[act], order_quantity=store_q[act],
-        pack_size=inp.store_pack[act])
+    rows = np.nonzero(act)[0]
+    pw = np.zeros_like(ew) if pw is None else pw
+    return rows, (inp.store_mean[act] * inp.days_per_year, inp.store_mean[act], inp.store_sd[act],
+                  inp.store_lead[act], inp.store_lead_sd[act], inp.store_count[act], inp.store_order_cost[act],
+                  inp.store_holding_cost[act], inp.store_backorder_cost[act], inp.store_target[act])
+
+
+def _optimise_stores(inp: TwoLevelInputs, ew, vw, store_q, pw=None, refine=False):
+    rows, args = _store_args(inp, ew, vw, pw)
+    act = inp.store_active
+    pwv = np.zeros_like(ew) if pw is None else pw
+    pol, mean, sd, codes = leaf_policies(*args, store_q[act], inp.store_pack[act], ew[rows], vw[rows], pwv[rows],
+                                         mode=inp.mode, basis=inp.backorder_basis, refine=refine)
     return rows, mean, sd, codes, pol
 
 
-def _evaluate_stores(inp: TwoLevelInputs, ew, vw, store_r, store_q):
-    from models import single_site as ss
-
-    rows, mean, sd, codes = _store_block(inp, ew, vw)
+def _evaluate_stores(inp: TwoLevelInputs, ew, vw, store_r, store_q, pw=None):
+    rows, args = _store_args(inp, ew, vw, pw)
     act = inp.store_active
-    pol = ss.evaluate_policy(
-        inp.store_mean[act] * inp.days_per_year, mean, sd, inp.store_order_cost[act], inp.store_holding_cost[act],
-        np.where(np.isfinite(store_r[act]), store_r[act], 0.0),
-        np.where(np.isfinite(store_q[act]), store_q[act], 0.0), distribution=codes, backorder_cost=inp.store_backorder_cost[act],
-        backorder_basis=inp.backorder_basis)
+    pwv = np.zeros_like(ew) if pw is None else pw
+    pol, mean, sd, codes = leaf_policies(*args, np.where(np.isfinite(store_q[act]), store_q[act], 0.0),
+                                         inp.store_pack[act], ew[rows], vw[rows], pwv[rows], mode=inp.mode,
+                                         basis=inp.backorder_basis,
+                                         reorder_point=np.where(np.isfinite(store_r[act]), store_r[act], 0.0))
     return rows, mean, sd, codes, pol
 
 
@@ -1148,7 +1165,8 @@ def evaluate_two_level(inp: TwoLevelInputs, store_reorder_point: np.ndarray, sto
     demand = _lattice_q0(demand, q0)
     state = warehouse_moments(demand, r0, q0)
     ew, vw = delay_moments(state, demand)
-    rows, mean, sd, codes, pol = _evaluate_stores(inp, ew, vw, np.asarray(store_reorder_point, dtype=float), sq)
+    rows, mean, sd, codes, pol = _evaluate_stores(inp, ew, vw, np.asarray(store_reorder_point, dtype=float), sq,
+                                                  state.wait_probability)
     n = inp.n
     return _assemble(inp, demand, r0, q0, state, ew, vw, rows, mean, sd, codes, pol,
                      np.zeros(n, dtype=np.int64), np.ones(n, dtype=bool))
@@ -1255,7 +1273,7 @@ def optimise_two_level(inp: TwoLevelInputs, *, points: int = SEARCH_POINTS, roun
     def network_cost(r0c):
         state = warehouse_moments(demand, r0c, q0, tables=tables)
         ew, vw = delay_moments(state, demand)
-        rows, _, _, _, pol = _optimise_stores(inp, ew, vw, store_q)
+        rows, _, _, _, pol = _optimise_stores(inp, ew, vw, store_q, state.wait_probability)
         ordering, holding, back, _ = _warehouse_rows(inp, demand, state, r0c, q0)
         return ordering + holding + back + _per_item(rows, np.asarray(pol.total_cost, dtype=float), n)
 
@@ -1282,6 +1300,576 @@ def optimise_two_level(inp: TwoLevelInputs, *, points: int = SEARCH_POINTS, roun
     # final: stores re-optimised at the best R0, then evaluated
     state = warehouse_moments(demand, best_r, q0, tables=tables)
     ew, vw = delay_moments(state, demand)
-    rows, mean, sd, codes, pol = _optimise_stores(inp, ew, vw, store_q)
+    rows, mean, sd, codes, pol = _optimise_stores(inp, ew, vw, store_q, state.wait_probability, refine=True)
     result = _assemble(inp, demand, best_r, q0, state, ew, vw, rows, mean, sd, codes, pol, its, done)
     return result, seed_eval
+
+
+# ----------------------------------------------------------------------------------------------------------
+# trees deeper than two levels: the same step level by level (moment-fitted site demand)
+# ----------------------------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class TreeInputs:
+    """``n`` items on a site tree of ``S`` slots (slot 0 the root; ``parent[s]`` the slot above, -1 at the root).
+
+    Arrays ``(n, S)``: ``active`` (the item is stocked there), ``mean``/``sd`` (own customer demand per day),
+    ``lead``/``lead_sd`` (supplier lead time at the root, transit below), ``count`` (count demand),
+    ``order_cost``, ``holding_cost``, ``backorder_cost`` (0 where none), ``target`` (NaN where none),
+    ``fixed_q`` (NaN = free), ``pack``. A site whose children do not stock an item is a leaf for that item.
+    """
+
+    parent: np.ndarray
+    active: np.ndarray
+    mean: np.ndarray
+    sd: np.ndarray
+    lead: np.ndarray
+    lead_sd: np.ndarray
+    count: np.ndarray
+    order_cost: np.ndarray
+    holding_cost: np.ndarray
+    backorder_cost: np.ndarray
+    target: np.ndarray
+    fixed_q: np.ndarray
+    pack: np.ndarray
+    days_per_year: float = 365.0
+    mode: str = "cost"
+    backorder_basis: str = "per_unit"
+
+
+@dataclass(frozen=True)
+class TreeResult:
+    """Per (item, slot) arrays ``(n, S)`` (NaN where not stocked) and per item ``network_cost`` (n,).
+
+    ``delay``/``delay_var``: the wait a slot's orders see at its parent (0 at the root). ``leaf``: slots
+    evaluated by the single-site functions. ``iterations``/``converged``: the reorder-point search (n,).
+    """
+
+    reorder_point: np.ndarray
+    order_quantity: np.ndarray
+    safety_stock: np.ndarray
+    ltd_mean: np.ndarray
+    ltd_sd: np.ndarray
+    distribution: np.ndarray
+    cycle_service: np.ndarray
+    fill_rate: np.ndarray
+    on_hand: np.ndarray
+    backorders: np.ndarray
+    orders_per_year: np.ndarray
+    ordering_cost: np.ndarray
+    cycle_stock_cost: np.ndarray
+    safety_stock_cost: np.ndarray
+    backorder_cost: np.ndarray
+    total_cost: np.ndarray
+    z: np.ndarray
+    note: np.ndarray
+    delay: np.ndarray
+    delay_var: np.ndarray
+    leaf: np.ndarray
+    network_cost: np.ndarray
+    iterations: np.ndarray
+    converged: np.ndarray
+
+
+def _tree_shape(parent: np.ndarray, active: np.ndarray):
+    parent = np.asarray(parent, dtype=np.int64)
+    s_count = parent.size
+    depth = np.zeros(s_count, dtype=np.int64)
+    for s in range(s_count):
+        p, d = parent[s], 0
+        while p >= 0:
+            d += 1
+            p = parent[p]
+            if d > s_count:
+                raise ValueError("parent: the slots form a cycle")
+        depth[s] = d
+    children = [np.flatnonzero(parent == s) for s in range(s_count)]
+    has_child = np.zeros_like(active)
+    for s in range(s_count):
+        for c in children[s]:
+            has_child[:, s] |= active[:, c]
+    return depth, children, active & ~has_child, active & has_child
+
+
+def _fitted_demand(mean, var, rate, lead_sd, short, long_, const, own_var, count, order_size) -> WarehouseDemand:
+    """A site's lead-time demand by moments: negative binomial / Poisson pmf for counts, else normal."""
+    n = mean.size
+    width_need = _support_width(mean, var)
+    discrete = count & (width_need <= MAX_EXACT_SUPPORT)
+    bucket = np.maximum(2 ** np.ceil(np.log2(np.maximum(width_need, 1))), MIN_WIDTH).astype(np.int64)
+    tail = np.zeros(n)
+    blocks = []
+    for w in np.unique(bucket[discrete]):
+        idx = np.flatnonzero(discrete & (bucket == w))
+        pmf, t = count_pmf(mean[idx], var[idx], int(w))
+        tail[idx] = t
+        keep = t <= TAIL_TOL
+        blocks.append((idx[keep], pmf[keep]))
+    discrete = discrete & (tail <= TAIL_TOL)
+    return WarehouseDemand(mean=mean, var=var, discrete=discrete, blocks=tuple(blocks), step=np.ones(n, np.int64),
+                           rate=rate, variance_rate=short.sum(axis=1) + own_var, tail=tail,
+                           method=np.where(discrete, 2, 0).astype(np.int8), lead_sd=lead_sd,
+                           stream_short=short, stream_long=long_, stream_const=const, own_var_rate=own_var,
+                           order_size=order_size)
+
+
+def _tree_pass(inp: TreeInputs, r: np.ndarray, q: np.ndarray, *, optimise_leaves: bool, refine: bool = False):
+    """One evaluation of the whole tree (leaves evaluated or re-optimised for the delays they face)."""
+    from models import single_site as ss
+
+    n, s_count = inp.active.shape
+    act = inp.active
+    depth, children, leaf, internal = _tree_shape(inp.parent, act)
+    qv = np.where(act, q, np.nan)
+    # bottom-up: rates and long-window variance rates of the demand arriving at each slot
+    rate = np.where(act, inp.mean, 0.0)
+    longv = np.where(act, inp.sd**2, 0.0)
+    for s in np.argsort(-depth, kind="stable"):
+        for c in children[s]:
+            rate[:, s] += np.where(act[:, c], rate[:, c], 0.0)
+            longv[:, s] += np.where(act[:, c], longv[:, c], 0.0)
+
+    def window_var(s, w):
+        v = np.where(act[:, s], inp.sd[:, s] ** 2 * w, 0.0)
+        for c in children[s]:
+            on = act[:, c] & (rate[:, c] > 0)
+            if not np.any(on):
+                continue
+            inner = window_var(c, w)
+            qc = np.where(on & np.isfinite(qv[:, c]), qv[:, c], 1.0)
+            v = v + np.where(on, order_stream_variance(rate[:, c] * w, inner, qc), 0.0)
+        return v
+
+    def streams(s):
+        cs = children[s]
+        if len(cs) == 0:
+            z = np.zeros((n, 1))
+            return z, z, z
+        on = act[:, cs] & (rate[:, cs] > 0)
+        qc = np.where(on & np.isfinite(qv[:, cs]), qv[:, cs], 1.0)
+        short = np.where(on, np.maximum(rate[:, cs] * qc, longv[:, cs]), 0.0)
+        long_ = np.where(on, longv[:, cs], 0.0)
+        cnt = inp.count[:, cs]
+        const = np.where(on, np.where(cnt, (qc**2 - 1.0) / 6.0, qc**2 / 6.0), 0.0)
+        return short, long_, const
+
+    out = {k: np.full((n, s_count), np.nan) for k in (
+        "safety_stock", "ltd_mean", "ltd_sd", "cycle_service", "fill_rate", "on_hand", "backorders",
+        "orders_per_year", "ordering_cost", "cycle_stock_cost", "safety_stock_cost", "backorder_cost",
+        "total_cost", "z")}
+    dist = np.full((n, s_count), -1, dtype=np.int64)
+    note = np.zeros((n, s_count), dtype=np.int64)
+    delay = np.zeros((n, s_count))
+    delay_var = np.zeros((n, s_count))
+    wait_p = np.zeros((n, s_count))
+    r_out = np.where(act, r, np.nan)
+    q_out = qv.copy()
+    days = inp.days_per_year
+    # top-down over internal slots: each slot's state gives its children's delay
+    for s in np.argsort(depth, kind="stable"):
+        rows = internal[:, s]
+        if not np.any(rows):
+            continue
+        ew_p, vw_p = delay[:, s], delay_var[:, s]
+        window = inp.lead[:, s] + ew_p
+        mean = rate[:, s] * window
+        var = window_var(s, window) + rate[:, s] ** 2 * (inp.lead_sd[:, s] ** 2 + vw_p)
+        short, long_, const = streams(s)
+        cs = children[s]
+        on = act[:, cs] & (rate[:, cs] > 0)
+        qcs = np.where(on & np.isfinite(qv[:, cs]), qv[:, cs], 1.0)
+        osize = (np.where(on, rate[:, cs] * qcs, 0.0).sum(axis=1) + np.where(act[:, s], inp.mean[:, s], 0.0))
+        osize = np.where(rate[:, s] > 0, osize / np.where(rate[:, s] > 0, rate[:, s], 1.0), 1.0)
+        demand = _fitted_demand(mean, var, rate[:, s], np.sqrt(inp.lead_sd[:, s] ** 2 + vw_p), short, long_,
+                                const, np.where(act[:, s], inp.sd[:, s] ** 2, 0.0), inp.count[:, s], osize)
+        rs = np.where(rows, r[:, s], 0.0)
+        qs = np.where(rows & np.isfinite(qv[:, s]), qv[:, s], 1.0)
+        state = warehouse_moments(demand, rs, qs)
+        ew, vw = delay_moments(state, demand)
+        for c in children[s]:
+            delay[:, c] = np.where(act[:, c], ew, 0.0)
+            delay_var[:, c] = np.where(act[:, c], vw, 0.0)
+            wait_p[:, c] = np.where(act[:, c], state.wait_probability, 0.0)
+        sd0 = np.sqrt(np.maximum(var, 0.0))
+        own_share = np.where(rate[:, s] > 0, inp.mean[:, s] / np.where(rate[:, s] > 0, rate[:, s], 1.0), 0.0)
+        ordering = inp.order_cost[:, s] * rate[:, s] * days / qs
+        holding = inp.holding_cost[:, s] * state.expected_on_hand
+        fill = 1.0 - state.stockout_probability
+        if inp.backorder_basis == "per_unit_year":
+            back = inp.backorder_cost[:, s] * own_share * state.expected_backorders
+        else:
+            back = inp.backorder_cost[:, s] * inp.mean[:, s] * days * (1.0 - fill)
+        cycle = inp.holding_cost[:, s] * qs / 2.0
+        cdf_r = special.ndtr((rs - mean) / np.maximum(sd0, SD_FLOOR * np.maximum(1.0, mean)))
+        for rws, pmf in demand.blocks:
+            cdf = np.cumsum(pmf, axis=1)
+            k = np.clip(np.rint(rs[rws]).astype(np.int64), -1, cdf.shape[1] - 1)
+            cdf_r[rws] = np.where(k < 0, 0.0, np.take_along_axis(cdf, np.maximum(k, 0)[:, None], axis=1)[:, 0])
+        vals = {"safety_stock": rs - mean, "ltd_mean": mean, "ltd_sd": sd0, "cycle_service": cdf_r,
+                "fill_rate": fill, "on_hand": state.expected_on_hand, "backorders": state.expected_backorders,
+                "orders_per_year": rate[:, s] * days / qs, "ordering_cost": ordering, "cycle_stock_cost": cycle,
+                "safety_stock_cost": holding - cycle, "backorder_cost": back,
+                "total_cost": ordering + holding + back,
+                "z": np.where(sd0 > 0, (rs - mean) / np.where(sd0 > 0, sd0, 1.0), np.nan)}
+        for k, v in vals.items():
+            out[k][:, s] = np.where(rows, v, out[k][:, s])
+        dist[:, s] = np.where(rows, np.where(demand.discrete, 1, 0), dist[:, s])
+    # leaves: the single-site functions with the delay they face
+    args = (inp.mean[leaf] * days, inp.mean[leaf], inp.sd[leaf], inp.lead[leaf], inp.lead_sd[leaf],
+            inp.count[leaf], inp.order_cost[leaf], inp.holding_cost[leaf], inp.backorder_cost[leaf],
+            inp.target[leaf])
+    if optimise_leaves:
+        pol, lm, lsd, codes = leaf_policies(*args, qv[leaf], inp.pack[leaf], delay[leaf], delay_var[leaf],
+                                            wait_p[leaf], mode=inp.mode, basis=inp.backorder_basis,
+                                            refine=refine)
+    else:
+        pol, lm, lsd, codes = leaf_policies(*args, np.where(np.isfinite(qv[leaf]), qv[leaf], 0.0), inp.pack[leaf],
+                                            delay[leaf], delay_var[leaf], wait_p[leaf], mode=inp.mode,
+                                            basis=inp.backorder_basis,
+                                            reorder_point=np.where(np.isfinite(r_out[leaf]), r_out[leaf], 0.0))
+    r_out[leaf] = pol.reorder_point
+    q_out[leaf] = pol.order_quantity
+    out["ltd_mean"][leaf] = lm
+    out["ltd_sd"][leaf] = lsd
+    for k, f in (("safety_stock", "safety_stock"), ("cycle_service", "cycle_service"), ("fill_rate", "fill_rate"),
+                 ("on_hand", "expected_on_hand"), ("backorders", "expected_backorders"),
+                 ("orders_per_year", "orders_per_year"), ("ordering_cost", "ordering_cost"),
+                 ("cycle_stock_cost", "cycle_stock_cost"), ("safety_stock_cost", "safety_stock_cost"),
+                 ("backorder_cost", "backorder_cost"), ("total_cost", "total_cost"), ("z", "z")):
+        out[k][leaf] = np.asarray(getattr(pol, f), dtype=float)
+    dist[leaf] = codes
+    note[leaf] = np.asarray(pol.note).astype(np.int64)
+    cost = np.nansum(np.where(act, out["total_cost"], 0.0), axis=1)
+    return TreeResult(reorder_point=r_out, order_quantity=q_out, distribution=dist, note=note, delay=delay,
+                      delay_var=delay_var, leaf=leaf, network_cost=cost, iterations=np.zeros(n, np.int64),
+                      converged=np.ones(n, dtype=bool), **out)
+
+
+def evaluate_tree(inp: TreeInputs, reorder_point: np.ndarray, order_quantity: np.ndarray) -> TreeResult:
+    """Evaluate given ``(R, Q)`` on a site tree of any depth, level by level.
+
+    Parameters
+    ----------
+    inp : TreeInputs
+    reorder_point, order_quantity : ndarray, shape (n, S)
+
+    Returns
+    -------
+    TreeResult
+
+    Examples
+    --------
+    See ``tests/test_network.py`` (three-level trees against the simulator).
+
+    Notes
+    -----
+    Bottom-up, each slot's arriving demand is its own customers plus its children's order streams (rates add;
+    the variance over a window ``w`` is ``sum_c Var(Q_c floor((D_c(w) + V_c) / Q_c))`` by
+    :func:`order_stream_variance`, recursively). Top-down, an internal slot faces lead time ``L_s + W_parent``;
+    its lead-time demand (mean ``lambda_s (L_s + E W)``, variance ``V_s(L_s + E W) + lambda_s**2 (sL**2 +
+    Var W)``) is fitted (negative binomial / normal), its state gives the delay moments of its children
+    (:func:`delay_moments`); leaves use the single-site functions. For two levels
+    :func:`evaluate_two_level` uses the exact convolution at the root instead.
+    """
+    return _tree_pass(inp, np.asarray(reorder_point, dtype=float), np.asarray(order_quantity, dtype=float),
+                      optimise_leaves=False)
+
+
+def optimise_tree(inp: TreeInputs, *, points: int = SEARCH_POINTS, rounds: int = SEARCH_ROUNDS
+                  ) -> tuple[TreeResult, TreeResult]:
+    """Plan a site tree of any depth: single-site seeds, then each internal level's reorder points searched.
+
+    Parameters
+    ----------
+    inp : TreeInputs
+    points, rounds : int
+        As :func:`optimise_two_level`.
+
+    Returns
+    -------
+    network, seed : TreeResult
+        The plan, and the single-site plan evaluated on the tree.
+
+    Examples
+    --------
+    See ``tests/test_network.py``.
+
+    Notes
+    -----
+    Seeds: every site planned alone (leaves on their transit time; an internal site on the demand passing
+    through it, with its own backorder cost or target, else the demand-weighted mean of its leaves'). Order
+    quantities stay as seeded. Then internal slots are taken deepest level first, then up to the root; for
+    each slot the reorder point runs over a bracketing grid (vectorised over items) with every leaf re-optimised
+    for the resulting delays and the other internal slots fixed, minimising the network cost per item.
+    """
+    from models import single_site as ss
+
+    n, s_count = inp.active.shape
+    act = inp.active
+    depth, children, leaf, internal = _tree_shape(inp.parent, act)
+    days = inp.days_per_year
+    # seeds -------------------------------------------------------------------------------------------
+    rate = np.where(act, inp.mean, 0.0)
+    var_rate = np.where(act, inp.sd**2, 0.0)
+    w_b = np.where(leaf, inp.mean * inp.backorder_cost, 0.0)
+    w_t = np.where(leaf & np.isfinite(inp.target), inp.mean * np.nan_to_num(inp.target), 0.0)
+    w_m = np.where(leaf, inp.mean, 0.0)
+    for s in np.argsort(-depth, kind="stable"):
+        for c in children[s]:
+            on = act[:, c]
+            for a in (rate, var_rate, w_b, w_t, w_m):
+                a[:, s] += np.where(on, a[:, c], 0.0)
+    wm = np.where(w_m > 0, w_m, 1.0)
+    back = np.where(internal & (inp.backorder_cost <= 0), w_b / wm, inp.backorder_cost)
+    target = np.where(internal & ~np.isfinite(inp.target), w_t / wm, inp.target)
+    ltd_m = rate * inp.lead
+    ltd_v = var_rate * inp.lead + rate**2 * inp.lead_sd**2
+    ltd_s = np.sqrt(np.maximum(ltd_v, 0.0))
+    codes = _store_codes(inp.count[act], ltd_m[act], ltd_s[act])
+    pol = ss.optimise_policy(rate[act] * days, ltd_m[act], ltd_s[act], inp.order_cost[act], inp.holding_cost[act],
+                             distribution=codes, mode=inp.mode, backorder_cost=back[act],
+                             backorder_basis=inp.backorder_basis, target=target[act], order_quantity=inp.fixed_q[act],
+                             pack_size=inp.pack[act])
+    q = np.full((n, s_count), np.nan)
+    r = np.zeros((n, s_count))
+    qseed = np.asarray(pol.order_quantity, dtype=float)
+    q[act] = np.where(qseed > 0, qseed, np.nan)
+    r[act] = pol.reorder_point
+    q = np.where(internal & ~(q > 0), 1.0, q)
+    seed = _tree_pass(inp, r, q, optimise_leaves=False)
+    # level-wise search ---------------------------------------------------------------------------------
+    its = np.zeros(n, dtype=np.int64)
+    conv = np.ones(n, dtype=bool)
+    best = seed
+    for s in np.argsort(-depth, kind="stable"):
+        rows = internal[:, s]
+        if not np.any(rows):
+            continue
+        mean_s = best.ltd_mean[:, s]
+        sd_s = best.ltd_sd[:, s]
+        disc = inp.count[:, s]
+        lo = np.where(rows, -q[:, s], 0.0)
+        hi = np.where(rows, np.ceil(np.nan_to_num(mean_s) + SEARCH_HIGH_SDS * np.nan_to_num(sd_s)), 1.0)
+        hi = np.maximum(hi, lo + 1.0)
+        best_r = np.where(rows, r[:, s], 0.0)
+        best_c = np.full(n, np.inf)
+        done = ~rows
+        tol = np.where(disc, SEARCH_TOL_UNITS, SEARCH_TOL_SD * np.maximum(np.nan_to_num(sd_s), 1e-9))
+        for _ in range(rounds):
+            step = (hi - lo) / (points - 1)
+            cand = lo[:, None] + np.linspace(0.0, 1.0, points)[None, :] * (hi - lo)[:, None]
+            cand = np.where(disc[:, None], np.rint(cand), cand)
+            costs = np.empty((n, points))
+            for j in range(points):
+                rr = r.copy()
+                rr[:, s] = np.where(rows, cand[:, j], r[:, s])
+                costs[:, j] = _tree_pass(inp, rr, q, optimise_leaves=True).network_cost
+            j = np.argmin(costs, axis=1)
+            cj = costs[np.arange(n), j]
+            better = (cj < best_c) & ~done
+            best_c = np.where(better, cj, best_c)
+            best_r = np.where(better, cand[np.arange(n), j], best_r)
+            its += ~done
+            done |= step <= tol
+            lo = np.where(done, lo, np.maximum(best_r - step, lo))
+            hi = np.where(done, hi, np.minimum(best_r + step, hi))
+            if np.all(done):
+                break
+        conv &= done
+        r[:, s] = np.where(rows, best_r, r[:, s])
+        best = _tree_pass(inp, r, q, optimise_leaves=True)
+        r = np.where(best.leaf, best.reorder_point, r)
+    final = _tree_pass(inp, r, q, optimise_leaves=True, refine=True)
+    return TreeResult(**{**final.__dict__, "iterations": its, "converged": conv}), seed
+
+
+# ----------------------------------------------------------------------------------------------------------
+# sites facing a random delay: the delay as a three-point mixture
+# ----------------------------------------------------------------------------------------------------------
+#: Iterations of the final reorder-point refinement of stores under the delay mixture.
+REFINE_ITER = 40
+#: The refinement brackets the reorder point within these many lead-time-demand sds of the first guess.
+REFINE_LOW_SDS = 4.0
+REFINE_HIGH_SDS = 8.0
+_MIX_FIELDS = ("cycle_service", "fill_rate", "expected_on_hand", "expected_backorders", "safety_stock_cost",
+               "backorder_cost", "total_cost")
+
+
+def wait_points(mean_delay: np.ndarray, var_delay: np.ndarray, wait_probability: np.ndarray
+                ) -> tuple[np.ndarray, np.ndarray]:
+    """Three-point distribution of the delay: no wait, and two points for the wait when there is one.
+
+    Parameters
+    ----------
+    mean_delay, var_delay : ndarray
+        ``E[W]``, ``Var(W)``.
+    wait_probability : ndarray
+        ``P(W > 0)``.
+
+    Returns
+    -------
+    points, weights : ndarray, shape (..., 3)
+
+    Examples
+    --------
+    >>> pts, wts = wait_points(np.array([1.0]), np.array([3.0]), np.array([0.5]))
+    >>> round(float((pts * wts).sum()), 12), round(float((pts**2 * wts).sum()), 12)
+    (1.0, 4.0)
+
+    Notes
+    -----
+    ``W = 0`` with probability ``1 - P``; given ``W > 0`` the wait has mean ``m = E[W] / P`` and variance
+    ``v = E[W^2] / P - m**2``, represented by the two-point law with the mean, variance and skewness
+    ``2 sqrt(v) / m`` of a gamma variable: ``m + sqrt(v) x`` with ``x = (g -+ sqrt(g**2 + 4)) / 2``, always
+    non-negative. ``P`` is raised to ``E[W]**2 / E[W^2]`` where needed so that ``v >= 0``.
+    """
+    ew = np.asarray(mean_delay, dtype=float)
+    ew2 = np.asarray(var_delay, dtype=float) + ew * ew
+    p = np.clip(np.asarray(wait_probability, dtype=float), 0.0, 1.0)
+    has = ew > 0
+    p = np.where(has, np.maximum(p, np.where(ew2 > 0, ew * ew / np.where(ew2 > 0, ew2, 1.0), 1.0)), 0.0)
+    p = np.minimum(p, 1.0)
+    ps = np.where(has, p, 1.0)
+    m = ew / ps
+    v = np.maximum(ew2 / ps - m * m, 0.0)
+    sd = np.sqrt(v)
+    g = np.where(m > 0, 2.0 * sd / np.where(m > 0, m, 1.0), 0.0)
+    root = np.sqrt(g * g + 4.0)
+    a, b = (g - root) / 2.0, (g + root) / 2.0
+    pa, pb = b / (b - a), -a / (b - a)
+    points = np.stack([np.zeros_like(m), np.maximum(m + sd * a, 0.0), m + sd * b], axis=-1)
+    weights = np.stack([1.0 - p, p * pa, p * pb], axis=-1)
+    return points, weights
+
+
+def _mix_eval(annual, dmean, dsd, lead, lead_sd, count, a, h, b, r, q, points, weights, basis):
+    """The single-site evaluation mixed over the delay points (every KPI here is linear in the distribution)."""
+    from models import single_site as ss
+
+    pols = []
+    for k in range(points.shape[-1]):
+        m, s = store_ltd_moments(dmean, dsd, lead, lead_sd, points[..., k], 0.0)
+        codes = _store_codes(count, m, s)
+        pols.append(ss.evaluate_policy(annual, m, s, a, h, r, q, distribution=codes, backorder_cost=b,
+                                       backorder_basis=basis))
+    mixed = {f: sum(weights[..., k] * np.asarray(getattr(pols[k], f), dtype=float) for k in range(len(pols)))
+             for f in _MIX_FIELDS}
+    return pols[0], mixed
+
+
+def leaf_policies(annual, dmean, dsd, lead, lead_sd, count, order_cost, holding_cost, backorder_cost, target,
+                  order_quantity, pack, mean_delay, var_delay, wait_probability, *, mode: str, basis: str,
+                  reorder_point=None, refine: bool = False):
+    """Evaluate or optimise sites that order from an upstream site with a random delay.
+
+    Parameters
+    ----------
+    annual, dmean, dsd, lead, lead_sd, count, order_cost, holding_cost, backorder_cost, target : ndarray (k,)
+        Annual demand, daily demand mean/sd, transit time mean/sd, count flag, costs, target (NaN = none).
+    order_quantity, pack : ndarray (k,)
+        Fixed Q (NaN = free) and pack size.
+    mean_delay, var_delay, wait_probability : ndarray (k,)
+        The upstream delay ``E[W]``, ``Var(W)``, ``P(W > 0)``.
+    mode, basis : str
+        Planning mode and backorder-cost basis.
+    reorder_point : ndarray (k,), optional
+        Given: evaluate. None: optimise ``R`` (``Q`` as given or optimised on the moment fit).
+    refine : bool
+        Re-optimise ``R`` under the delay mixture (cost: golden-section / integer search; service: the smallest
+        ``R`` meeting the target) starting from the moment-fit optimum.
+
+    Returns
+    -------
+    policy : SitePolicy
+        KPIs mixed over :func:`wait_points`; ``safety_stock`` and ``z`` against the two-moment fit.
+    ltd_mean, ltd_sd : ndarray
+        Two-moment lead-time demand (``store_ltd_moments``).
+    codes : ndarray of int8
+        Distribution of the two-moment fit.
+
+    Examples
+    --------
+    See ``tests/test_echelon.py``.
+
+    Notes
+    -----
+    The lead-time demand is a mixture over the delay points ``w`` of demand over ``L + w``; each KPI is the
+    weighted sum of the single-site KPIs (``models.single_site.evaluate_policy``). The two-moment version
+    (one negative binomial / normal with the variance ``s**2 (L + E W) + d**2 (sL**2 + Var W)``) has too thin a
+    tail when the warehouse is rarely out of stock but then for long; the mixture keeps the atom at no wait.
+    """
+    from dataclasses import replace
+
+    from models import single_site as ss
+
+    m, s = store_ltd_moments(dmean, dsd, lead, lead_sd, mean_delay, var_delay)
+    codes = _store_codes(count, m, s)
+    points, weights = wait_points(mean_delay, var_delay, wait_probability)
+    if reorder_point is None:
+        base = ss.optimise_policy(annual, m, s, order_cost, holding_cost, distribution=codes, mode=mode,
+                                  backorder_cost=backorder_cost, backorder_basis=basis, target=target,
+                                  order_quantity=order_quantity, pack_size=pack)
+        r = np.asarray(base.reorder_point, dtype=float)
+    else:
+        r = np.asarray(reorder_point, dtype=float)
+        base = None
+    q = np.asarray(base.order_quantity if base is not None else order_quantity, dtype=float)
+    q = np.where(np.isfinite(q), q, 0.0)
+    if refine and reorder_point is None:
+        r = _refine(annual, dmean, dsd, lead, lead_sd, count, order_cost, holding_cost, backorder_cost, target,
+                    q, points, weights, mode, basis, r, s, annual > 0)
+    first, mixed = _mix_eval(annual, dmean, dsd, lead, lead_sd, count, order_cost, holding_cost, backorder_cost,
+                             r, q, points, weights, basis)
+    fit = ss.evaluate_policy(annual, m, s, order_cost, holding_cost, r, q, distribution=codes,
+                             backorder_cost=backorder_cost, backorder_basis=basis)
+    policy = replace(fit, **mixed)
+    if base is not None:
+        policy = replace(policy, iterations=base.iterations, converged=base.converged, note=base.note)
+    return policy, m, s, codes
+
+
+def _refine(annual, dmean, dsd, lead, lead_sd, count, a, h, b, target, q, points, weights, mode, basis, r0, sd,
+            live):
+    """Reorder points under the mixture, vectorised: bisection (service) or golden section (cost)."""
+
+    def kpi(r):
+        _, mixed = _mix_eval(annual, dmean, dsd, lead, lead_sd, count, a, h, b, r, q, points, weights, basis)
+        return mixed
+
+    width = np.maximum(sd, 1.0)
+    lo = r0 - REFINE_LOW_SDS * width
+    hi = r0 + REFINE_HIGH_SDS * width
+    if count.any():
+        lo = np.where(count, np.floor(lo), lo)
+        hi = np.where(count, np.ceil(hi), hi)
+    if mode in ("fill_rate", "cycle_service"):
+        t = np.where(np.isfinite(target), target, 0.0)
+        field = "fill_rate" if mode == "fill_rate" else "cycle_service"
+        ok_hi = kpi(hi)[field] >= t
+        for _ in range(REFINE_ITER):
+            mid = np.where(count, np.floor((lo + hi) / 2.0), (lo + hi) / 2.0)
+            good = kpi(mid)[field] >= t
+            hi = np.where(good, mid, hi)
+            lo = np.where(good, lo, mid)
+            if np.all(np.where(count, hi - lo <= 1.0, hi - lo <= 1e-4 * width)):
+                break
+        out = np.where(ok_hi, hi, r0)
+        return np.where(live, np.where(np.isfinite(target), out, r0), r0)
+    # cost: golden section on the continuous items, integer ternary search on the counts
+    gr = (np.sqrt(5.0) - 1.0) / 2.0
+    for _ in range(REFINE_ITER):
+        x1 = hi - gr * (hi - lo)
+        x2 = lo + gr * (hi - lo)
+        x1 = np.where(count, np.floor(x1), x1)
+        x2 = np.where(count, np.maximum(np.ceil(x2), x1 + 1.0), x2)
+        c1 = kpi(x1)["total_cost"]
+        c2 = kpi(x2)["total_cost"]
+        left = c1 <= c2
+        hi = np.where(left, x2, hi)
+        lo = np.where(left, lo, x1)
+        if np.all(np.where(count, hi - lo <= 2.0, hi - lo <= 1e-4 * width)):
+            break
+    cand = [lo, hi, (lo + hi) / 2.0 if True else None, r0]
+    cand[2] = np.where(count, np.floor(cand[2]), cand[2])
+    costs = np.stack([kpi(c)["total_cost"] for c in cand], axis=0)
+    best = np.stack(cand, axis=0)[np.argmin(costs, axis=0), np.arange(r0.size)]
+    return np.where(live, best, r0)
