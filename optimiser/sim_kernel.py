@@ -47,7 +47,7 @@ ST_IMMEDIATE_UNITS = 3  # of which met from stock at once
 ST_ORDERS = 4  # replenishment orders placed by the site
 ST_ORDER_UNITS = 5  # units ordered
 ST_CYCLES = 6  # receipts (each receipt closes a replenishment cycle)
-ST_SHORT_CYCLES = 7  # cycles in which some demand was not met at once
+ST_SHORT_CYCLES = 7  # receipts that found backorders waiting (the cycle ended out of stock)
 ST_WAIT_UNIT_DAYS = 8  # sum over units shipped to the site of their wait at the upstream site
 ST_SHIPPED_UNITS = 9  # units shipped to the site by its upstream site
 ST_DEMAND_EVENTS = 10  # customer demand events at the site
@@ -112,7 +112,6 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
     bo = np.zeros(n_sites, dtype=np.int64)  # backordered units waiting at the site
     cbo = np.zeros(n_sites, dtype=np.int64)  # of which customer units
     ipos = np.zeros(n_sites, dtype=np.int64)  # inventory position
-    short = np.zeros(n_sites, dtype=np.int64)  # a demand was short since the last receipt
     last = np.zeros(n_sites)  # time of the last change of oh / bo
     last_arr = np.zeros(n_sites)  # latest arrival scheduled at each site (no crossing)
     # heap of pending arrivals (time, site, qty)
@@ -181,7 +180,6 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
         if not measuring and tn >= warmup:
             for s in range(n_sites):
                 last[s] = warmup
-                short[s] = 0
             stats[:, :] = 0.0
             measuring = True
         if n_trace > 0:
@@ -231,9 +229,9 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
                 stats[s, ST_AREA_BACKORDERS] += bo[s] * dt
                 stats[s, ST_AREA_CUSTOMER_BACKORDERS] += cbo[s] * dt
                 stats[s, ST_CYCLES] += 1
-                stats[s, ST_SHORT_CYCLES] += short[s]
+                if bo[s] > 0:
+                    stats[s, ST_SHORT_CYCLES] += 1
             last[s] = t
-            short[s] = 0
             oh[s] += q
             while qlen[s] > 0 and oh[s] > 0:
                 h = qhead[s]
@@ -364,7 +362,6 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
                     bo[s] += rem
                     if child < 0:
                         cbo[s] += rem
-                    short[s] = 1
                     head = qhead[s]
                     merged = False
                     if child < 0 and n_waiting > 0:

@@ -14,8 +14,9 @@ Definitions of the KPIs (all counted after the warm-up):
 
 * fill rate - share of the units demanded from a site (customer demand plus orders of the sites below it) that
   are met from stock at once; customer fill rate - the same for the site's own customers only;
-* cycle service - share of replenishment cycles with no demand short; a cycle ends at each receipt at the
-  site (with one order outstanding at a time and unit demand this is P(lead-time demand <= R));
+* cycle service - share of replenishment cycles that end without a stockout: the share of receipts at the site
+  that find no backorders waiting. With unit demand, continuous review and a constant lead time the stock
+  just before a receipt is R - D(L), so this is the classic P(lead-time demand <= R);
 * on hand, backorders - time averages in units (backorders include store orders waiting at a warehouse);
 * orders per year - replenishment orders placed by the site;
 * store delay - mean wait, in days, of the units a site ordered from its upstream site between the order and

@@ -50,6 +50,9 @@ def test_single_site_poisson_matches_exact(r, q, lam, lead):
     assert _within(sim.mean("fill_rate"), sim.half_width("fill_rate"), fill).all()
     assert _within(sim.mean("on_hand"), sim.half_width("on_hand"), on_hand).all()
     assert _within(sim.mean("backorders"), sim.half_width("backorders"), back).all()
+    # cycle service: a receipt finds no backorders iff D(L) <= R (net stock just before it is R - D(L))
+    cs = stats.poisson.cdf(r, lam * lead)
+    assert _within(sim.mean("cycle_service"), sim.half_width("cycle_service"), cs).all()
     # orders per day = lambda / Q exactly in the long run (renewal argument)
     assert _within(sim.mean("orders_per_day"), sim.half_width("orders_per_day"), lam / q, 1e-3).all()
     # intervals are informative: tight compared with the values checked
