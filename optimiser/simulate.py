@@ -127,7 +127,7 @@ def compound_parameters(daily_mean: np.ndarray, daily_sd: np.ndarray) -> tuple[n
     --------
     >>> rate, theta = compound_parameters(np.array([2.0]), np.array([2.0]))
     >>> round(float(theta[0]), 6), round(float(rate[0]), 6)
-    (0.5, 1.442695)
+    (0.5, 1.386294)
 
     Notes
     -----
@@ -455,8 +455,35 @@ def simulate_network_arrays(
 
 
 def replication_seeds(seed: int, replications: int, n_items: int) -> np.ndarray:
-    """Task seeds (K, n): one numpy Generator per replication (``SeedSequence(seed).spawn(K)``) draws one
-    32-bit seed per item. Item i's seeds do not depend on how many items follow it."""
+    """Seeds of the (replication, item) tasks of a simulation.
+
+    Parameters
+    ----------
+    seed : int
+        Master seed.
+    replications, n_items : int
+        K and n.
+
+    Returns
+    -------
+    ndarray of int64, (K, n)
+        One numpy Generator per replication (``SeedSequence(seed).spawn(K)``) draws one 32-bit seed per item;
+        the kernel seeds its generator with it at the start of the task.
+
+    Examples
+    --------
+    >>> replication_seeds(1, 2, 3).shape
+    (2, 3)
+
+    Notes
+    -----
+    Item i's seeds do not depend on how many items follow it, and replications are independent streams.
+
+    References
+    ----------
+    O'Neill, M. E., "PCG: a family of simple fast space-efficient statistically good algorithms for random
+    number generation", Harvey Mudd College, HMC-CS-2014-0905, 2014.
+    """
     out = np.empty((replications, n_items), dtype=np.int64)
     for k, ss in enumerate(np.random.SeedSequence(int(seed)).spawn(replications)):
         out[k] = np.random.Generator(np.random.PCG64(ss)).integers(0, 2**32 - 1, size=n_items, dtype=np.int64)
