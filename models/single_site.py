@@ -91,10 +91,9 @@ NEWTON_MAX_ITER = 100
 #: Root solver for the reorder point under a shortage-fraction condition.
 ROOT_TOL = 1e-13
 ROOT_MAX_ITER = 200
-#: Golden-section search over Q (service modes with a jointly optimised Q).
-GOLDEN_ITER = 90
-#: Search range for Q in golden-section: [Q_LOW_FACTOR·EOQ, Q_HIGH_FACTOR·EOQ + Q_HIGH_SIGMAS·σ].
-Q_LOW_FACTOR = 0.25
+#: Count items, service target with a jointly optimised Q: integer search on [1, Q_HIGH_FACTOR·EOQ +
+#: Q_HIGH_SIGMAS·σ]; a deterministic fill-rate item with target <= 1/2 (cost falls without bound in Q under
+#: the per-unit basis) stops at Q_HIGH_FACTOR·EOQ.
 Q_HIGH_FACTOR = 8.0
 Q_HIGH_SIGMAS = 50.0
 #: Below this Q/σ the window averages use the midpoint rule (second-order accurate).
@@ -183,17 +182,6 @@ def _avg_G(z, q):
     return np.where(small, normal_loss(z + 0.5 * q), wide)
 
 
-def _nrm_short(R, Q, mu, sd):
-    """[n(R) − n(R + Q)] / Q for normal (σ > 0) or a point mass at μ (σ = 0)."""
-    pos = sd > 0
-    s = np.where(pos, sd, 1.0)
-    qpos = Q > 0
-    Qs = np.where(qpos, Q, 1.0)
-    cont = _avg_sf((R - mu) / s, Qs / s)
-    det = (np.maximum(mu - R, 0.0) - np.maximum(mu - R - Qs, 0.0)) / Qs
-    return np.where(qpos, np.where(pos, cont, det), 0.0)
-
-
 def _nrm_backorders(R, Q, mu, sd):
     """E[B] = [n2(R) − n2(R + Q)] / Q for normal (σ > 0) or a point mass (σ = 0)."""
     pos = sd > 0
@@ -276,17 +264,17 @@ def _int_search(pred, lo, hi):
     return hi, steps
 
 
-def _solve_short(q, s):
+def _solve_short(q, s, start=None):
     """z with [G(z) − G(z + q)]/q = s (0 < s < 1): safeguarded Newton inside a bracket.
 
-    Returns (z, iterations, converged).
+    ``start`` (optional) is a first guess (clipped into the bracket). Returns (z, iterations, converged).
     """
     q = np.asarray(q, dtype=float)
     s = np.asarray(s, dtype=float)
     q, s = np.broadcast_arrays(q, s)
     hi = _isf(s)             # avg sf <= sf(z) <= s here
     lo = hi - q              # avg sf >= sf(z + q) >= s here
-    z = hi.copy()
+    z = hi.copy() if start is None else np.clip(np.asarray(start, dtype=float), lo, hi)
     it = np.zeros(q.shape, dtype=np.int64)
     conv = np.zeros(q.shape, dtype=bool)
     conv |= q <= 0
@@ -717,33 +705,95 @@ def _fz_counts(c: _Counts, D, A, h, p):
     return Q, r, steps
 
 
-# =============================================================================== generic Q searches
-def _golden(fun, lo, hi):
-    """Vectorised golden-section minimisation of fun(idx, x) on [lo, hi]; returns (x, at_edge)."""
-    invphi = (np.sqrt(5.0) - 1.0) / 2.0
-    idx = np.arange(lo.shape[0])
-    a, b = lo.copy(), hi.copy()
-    x1 = b - invphi * (b - a)
-    x2 = a + invphi * (b - a)
-    f1, f2 = fun(idx, x1), fun(idx, x2)
-    for _ in range(GOLDEN_ITER):
-        left = f1 <= f2
-        b = np.where(left, x2, b)
-        a = np.where(left, a, x1)
-        nx1 = np.where(left, b - invphi * (b - a), x2)
-        nx2 = np.where(left, x1, a + invphi * (b - a))
-        newx = np.where(left, nx1, nx2)
-        fn = fun(idx, newx)
-        f1n = np.where(left, fn, f2)
-        f2n = np.where(left, f1, fn)
-        x1, x2, f1, f2 = nx1, nx2, f1n, f2n
+# ===================================================================== service targets, normal, free Q
+def _service_q_normal(mu, sd, D, A, h, t, mode, basis):
+    """Q minimising ordering + holding under a service target (normal, σ > 0, A > 0).
+
+    Works in q = Q/σ, z = (R − μ)/σ, k = AD/σ². Along the minimal-z path z(q) (z fixed for cycle service;
+    [G(z) − G(z + q)]/q = 1 − t for fill rate, so dz/dq = (sf(z + q) − s)/(sf(z) − sf(z + q))), the cost
+    per σ is k/q + h(q/2 + z) (per-unit basis) or k/q + h(z + q/2 + [G2(z) − G2(z + q)]/q) (per-unit-year:
+    exact on hand), with derivative
+    −k/q² + h/2 + h·dz/dq  [+ h(−s·dz/dq + (G(z + q) − avg G)/q)].
+    The derivative is <= 0 at the EOQ; the bracket is widened by doubling until it turns positive, then a
+    bracketing secant (Illinois) finds its root. Returns (Q, iterations, converged, at_search_limit).
+    """
+    n = mu.shape[0]
+    k = A * D / (sd * sd)
+    fill = mode == "fill_rate"
+    s = 1.0 - t if fill else np.zeros(n)
+    zt = np.zeros(n) if fill else special.ndtri(t)
+    q_eoq = np.sqrt(2.0 * k / h)
+    it = np.zeros(n, dtype=np.int64)
+    zlast = np.full(n, np.nan)
+
+    def deriv(idx, q):
+        if fill:
+            start = zlast[idx]
+            z, itz, _ = _solve_short(q, s[idx], np.where(np.isfinite(start), start, _isf(s[idx])))
+            it[idx] += itz
+            zlast[idx] = z
+            sf1, sf2 = special.ndtr(-z), special.ndtr(-(z + q))
+            den = sf1 - sf2
+            dz = np.where(den > 0, (sf2 - s[idx]) / np.where(den > 0, den, 1.0), 0.0)
+        else:
+            z = zt[idx]
+            dz = np.zeros(idx.size)
+        hh = h[idx]
+        d = -k[idx] / (q * q) + 0.5 * hh + hh * dz
+        if basis == "per_unit_year":
+            avg = _avg_G(z, q)
+            d = d + hh * (-s[idx] * dz + (normal_loss(z + q) - avg) / q)
+        it[idx] += 1
+        return d
+
+    allidx = np.arange(n)
+    a = q_eoq.copy()
+    fa = np.minimum(deriv(allidx, a), 0.0)
+    b = np.maximum(2.0 * a, a + 1.0)
+    fb = deriv(allidx, b)
+    edge = np.zeros(n, dtype=bool)
+    grow = np.flatnonzero(fb <= 0)
+    for _ in range(60):                                   # widen: b ← 2b until the derivative is > 0
+        if not grow.size:
+            break
+        a[grow], fa[grow] = b[grow], np.minimum(fb[grow], 0.0)
+        b[grow] = 2.0 * b[grow]
+        fb[grow] = deriv(grow, b[grow])
+        grow = grow[fb[grow] <= 0]
+    edge[grow] = True
+    conv = np.zeros(n, dtype=bool)
+    conv[grow] = True
+    side = np.zeros(n, dtype=np.int8)
+    active = np.flatnonzero(~conv)
     x = 0.5 * (a + b)
-    edge = (x - lo <= 1e-6 * (hi - lo)) | (hi - x <= 1e-6 * (hi - lo))
-    return x, edge
+    for _ in range(ROOT_MAX_ITER):
+        if not active.size:
+            break
+        aa, bb, fA, fB = a[active], b[active], fa[active], fb[active]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            xs = (aa * fB - bb * fA) / (fB - fA)
+        bad = ~np.isfinite(xs) | (xs <= aa) | (xs >= bb)
+        xs = np.where(bad, 0.5 * (aa + bb), xs)
+        fx = deriv(active, xs)
+        left = fx < 0
+        sd_prev = side[active]
+        a[active] = np.where(left, xs, aa)
+        fa[active] = np.where(left, fx, np.where(sd_prev == 1, 0.5 * fA, fA))
+        b[active] = np.where(left, bb, xs)
+        fb[active] = np.where(left, np.where(sd_prev == -1, 0.5 * fB, fB), fx)
+        side[active] = np.where(left, -1, 1)
+        x[active] = xs
+        done = (b[active] - a[active] <= ROOT_TOL * b[active]) | (fx == 0) | (
+            np.abs(xs - np.where(left, aa, bb)) <= ROOT_TOL * xs)
+        conv[active[done]] = True
+        active = active[~done]
+    x = np.where(edge, b, x)
+    return x * sd, it, conv, edge
 
 
+# =============================================================================== generic Q searches
 def _int_golden(fun, lo, hi):
-    """Integer minimisation of a unimodal fun(idx, Q) on [lo, hi] (integers); returns (Q, at_edge)."""
+    """Integer ternary search of fun(idx, Q) on [lo, hi] (a start point; exact only for unimodal fun)."""
     idx = np.arange(lo.shape[0])
     a, b = lo.copy(), hi.copy()
     while True:
@@ -764,8 +814,71 @@ def _int_golden(fun, lo, hi):
         better = fc < fbest
         best = np.where(better, cand, best)
         fbest = np.where(better, fc, fbest)
-    edge = (best >= hi) & (hi > lo)
-    return best, edge
+    return best, fbest
+
+
+def _count_service_q(fun, D, mu, A, h, t, mode, basis, q1, sd):
+    """Exact integer Q for counts under a service target (ordering + holding along the minimal-R path).
+
+    The cost is not unimodal in Q (R jumps by whole units), so a ternary search only supplies a first
+    incumbent c*; then every Q in [⌈AD/c*⌉, Q_ub] is evaluated, where Q_ub is the last Q whose lower bound
+    LB(Q) <= c*:
+
+    * cycle service: LB = AD/Q + h(R_t + (Q + 1)/2 − μ) (R_t does not depend on Q; E[B] >= 0);
+    * fill rate: X >= 0 gives R >= −(1 − t)Q; per-unit basis LB = AD/Q + h((t − ½)Q + ½ − μ) (no bound
+      for t <= ½: the scan stops at Q_HIGH_FACTOR·EOQ + Q_HIGH_SIGMAS·σ and the item is flagged);
+      per-unit-year LB = AD/Q + h((tQ − μ)⁺)²/(2Q) (Jensen on each inventory-position level).
+
+    Returns (Q, at_search_limit, steps).
+    """
+    n = D.shape[0]
+    hi_cap = np.ceil(Q_HIGH_FACTOR * q1 + Q_HIGH_SIGMAS * sd) + 2.0
+    Q, best = _int_golden(fun, np.ones(n), hi_cap)
+    AD = A * D
+    if mode == "cycle_service":
+        Rt, _, _ = _best_R_counts(np.ones(n), fun.counts, D, h, np.zeros(n), "cycle_service", basis, t)
+
+        def lb(i, q):
+            return AD[i] / q + h[i] * (Rt[i] + 0.5 * (q + 1.0) - mu[i])
+    elif basis == "per_unit":
+        def lb(i, q):
+            return AD[i] / q + h[i] * ((t[i] - 0.5) * q + 0.5 - mu[i])
+    else:
+        def lb(i, q):
+            return AD[i] / q + h[i] * np.maximum(t[i] * q - mu[i], 0.0) ** 2 / (2.0 * q)
+    # Q_ub: double from the incumbent while LB <= c*, then bisect (LB is convex in Q)
+    allidx = np.arange(n)
+    lo = Q.copy()
+    up = np.minimum(np.maximum(2.0 * Q, Q + 1.0), hi_cap)
+    grow = np.flatnonzero((lb(allidx, up) <= best) & (up < hi_cap))
+    while grow.size:
+        lo[grow] = up[grow]
+        up[grow] = np.minimum(2.0 * up[grow], hi_cap[grow])
+        grow = grow[(lb(grow, up[grow]) <= best[grow]) & (up[grow] < hi_cap[grow])]
+    edge = lb(allidx, up) <= best
+    while True:
+        act = np.flatnonzero(up - lo > 1)
+        if not act.size:
+            break
+        mid = np.floor(0.5 * (lo[act] + up[act]))
+        ok = lb(act, mid) <= best[act]
+        lo[act] = np.where(ok, mid, lo[act])
+        up[act] = np.where(ok, up[act], mid)
+    q_ub = np.where(edge, up, lo)
+    q_lb = np.maximum(np.ceil(AD / best), 1.0)
+    steps = np.zeros(n, dtype=np.int64)
+    j = 0.0
+    active = np.flatnonzero(q_lb <= q_ub)
+    while active.size:
+        qc = q_lb[active] + j
+        fc = fun(active, qc)
+        better = fc < best[active]
+        Q[active] = np.where(better, qc, Q[active])
+        best[active] = np.where(better, fc, best[active])
+        steps[active] += 1
+        j += 1.0
+        active = active[q_lb[active] + j <= q_ub[active]]
+    return Q, edge, steps
 
 
 # ================================================================================== validation
@@ -984,8 +1097,9 @@ def optimise_policy(annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost, *
     * cost, per_unit_year: normal, damped Newton on the jointly convex exact cost in (z, Q/σ); counts, the
       exact Federgruen & Zheng (1992) algorithm.
     * cycle_service: R = F⁻¹(target) (smallest integer for counts). fill_rate: the smallest R with
-      1 − [n(R) − n(R + Q)]/Q >= target. Q given, EOQ, or by golden-section search (integer ternary search
-      for counts) on ordering + holding cost along the minimal-R path.
+      1 − [n(R) − n(R + Q)]/Q >= target. Q given, EOQ, or minimising ordering + holding cost along the
+      minimal-R path: normal, a bracketing secant on dC/dQ (see ``_service_q_normal``); counts, an integer
+      ternary search (cost assumed unimodal in Q).
     * σ = 0 (normal): exact deterministic answers (EOQ and R = μ for per-unit costs and cycle service,
       planned backorders R = μ − Q·h/(h + p) for per-unit-year costs, R = μ − (1 − target)·Q for fill rate).
 
@@ -1172,15 +1286,21 @@ def _joint(is_disc, D, mu, sd, A, h, b, dist, t, mode, basis, rule):
         if rule == "eoq" or (mode == "cycle_service" and basis == "per_unit"):
             Q = qmin
         else:
-            idx_all = np.arange(n)
-
-            def fun(idx, q):
-                Rq, _, _, _ = _best_R_normal(q, mu[idx], sd[idx], D[idx], h[idx], b[idx], mode, basis, t[idx])
-                return _objective(Rq, q, mu[idx], sd[idx], D[idx], A[idx], h[idx], b[idx], False, mode, basis)
-            lo = Q_LOW_FACTOR * qmin
-            hi = Q_HIGH_FACTOR * qmin + Q_HIGH_SIGMAS * sd
-            Q, edge = _golden(fun, lo, hi)
-            it[idx_all] += GOLDEN_ITER
+            Q = qmin.copy()
+            if P.size:
+                Q[P], it[P], conv[P], edge[P] = _service_q_normal(mu[P], sd[P], D[P], A[P], h[P], t[P], mode,
+                                                                  basis)
+            if det.any():
+                d = np.flatnonzero(det)
+                if mode == "cycle_service":          # R = μ, on hand Q/2: the EOQ
+                    Q[d] = qmin[d]
+                elif basis == "per_unit_year":        # R = μ − (1 − t)Q, on hand t²Q/2
+                    Q[d] = qmin[d] / t[d]
+                else:                                 # cost AD/Q + hQ(t − 1/2)
+                    ok = t[d] > 0.5
+                    Q[d] = np.where(ok, qmin[d] / np.sqrt(np.where(ok, 2.0 * t[d] - 1.0, 1.0)),
+                                    Q_HIGH_FACTOR * qmin[d])
+                    edge[d] = ~ok
         R, itr, cvr, _ = _best_R_normal(Q, mu, sd, D, h, b, mode, basis, t)
         return R, Q, it + itr, conv & cvr, flag, edge
 
@@ -1200,8 +1320,8 @@ def _joint(is_disc, D, mu, sd, A, h, b, dist, t, mode, basis, rule):
             Rq, _, _ = _best_R_counts(q, c.take(idx), D[idx], h[idx], b[idx], mode, basis, t[idx])
             return _objective(Rq, q, mu[idx], sd[idx], D[idx], A[idx], h[idx], b[idx], True, mode, basis,
                               c.take(idx))
-        lo = np.ones(n)
-        hi = np.ceil(Q_HIGH_FACTOR * q1 + Q_HIGH_SIGMAS * sd) + 2.0
-        Q, edge = _int_golden(fun, lo, hi)
+        fun.counts = c
+        Q, edge, st = _count_service_q(fun, D, mu, A, h, t, mode, basis, q1, sd)
+        it = it + st
     R, st, _ = _best_R_counts(Q, c, D, h, b, mode, basis, t)
     return R, Q, it + st, conv, flag, edge

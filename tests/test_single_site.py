@@ -490,3 +490,92 @@ def test_evaluate_reproduces_optimised_totals(mode, kw):
         np.testing.assert_allclose(getattr(ev, name), getattr(pol, name), rtol=1e-12, atol=1e-12)
     parts = ev.ordering_cost + ev.cycle_stock_cost + ev.safety_stock_cost + ev.backorder_cost
     np.testing.assert_allclose(parts, ev.total_cost, rtol=1e-12)
+
+
+@pytest.mark.parametrize("mode, target, basis", [("fill_rate", 0.95, "per_unit_year"),
+                                                 ("cycle_service", 0.9, "per_unit_year"),
+                                                 ("fill_rate", 0.99, "per_unit")])
+def test_service_joint_quantity_against_quantity_scan(mode, target, basis):
+    # one-dimensional brute force: the same objective for fixed Q on a dense grid (R re-solved for each Q;
+    # the targets are met exactly, see above), refined by scipy's bounded scalar minimiser
+    D, A, h, mu, sd, _ = random_normal_cases(41, 5)
+    pol = optimise_policy(D, mu, sd, A, h, mode=mode, target=target, backorder_basis=basis)
+    for i in range(5):
+        def cost(q, i=i):
+            one = optimise_policy(D[i], mu[i], sd[i], A[i], h[i], mode=mode, target=target,
+                                  backorder_basis=basis, order_quantity=q)
+            return one.total_cost
+        qs = np.linspace(0.5, 4, 400) * np.sqrt(2 * A[i] * D[i] / h[i]) + np.linspace(0, 3 * sd[i], 400)
+        costs = cost(qs)
+        j = int(costs.argmin())
+        assert 0 < j < 399
+        fine = optimize.minimize_scalar(lambda q: cost(q)[0], bounds=(qs[j - 1], qs[j + 1]), method="bounded",
+                                        options={"xatol": 1e-10})
+        assert pol.total_cost[i] <= min(fine.fun, costs.min()) * (1 + 1e-10)
+        assert pol.total_cost[i] == pytest.approx(min(fine.fun, costs.min()), rel=1e-7)
+
+
+@pytest.mark.parametrize("dist", [POISSON, NEGBIN])
+def test_count_service_targets_use_the_smallest_reorder_point(dist):
+    rng = np.random.default_rng(52)
+    n = 40
+    mu = rng.uniform(0.3, 30, n)
+    sd = np.sqrt(mu * (rng.uniform(1.3, 4, n) if dist == NEGBIN else 1.0))
+    D, A, h = rng.uniform(10, 500, n), rng.uniform(1, 80, n), rng.uniform(0.5, 5, n)
+    t = rng.uniform(0.5, 0.995, n)
+    def frozen(i):
+        if dist == POISSON:
+            return stats.poisson(mu[i])
+        return stats.nbinom(mu[i] ** 2 / (sd[i] ** 2 - mu[i]), mu[i] / sd[i] ** 2)
+    csl = optimise_policy(D, mu, sd, A, h, distribution=dist, mode="cycle_service", target=t)
+    for i in range(n):
+        R = csl.reorder_point[i]
+        assert frozen(i).cdf(R) >= t[i] > frozen(i).cdf(R - 1)
+
+    # fill rate (1/Q) sum_{y=R+1}^{R+Q} P(X <= y - 1) (Zipkin 2000, Foundations of Inventory Management)
+    def beta(i, r, q):
+        return frozen(i).cdf(np.arange(r, r + q)).mean()
+    for rule in ("eoq", "optimise"):
+        fr = optimise_policy(D, mu, sd, A, h, distribution=dist, mode="fill_rate", target=t,
+                             quantity_rule=rule)
+        R, Q = fr.reorder_point, fr.order_quantity
+        assert np.all(Q == np.round(Q)) and np.all(Q >= 1)
+        for i in range(n):
+            assert beta(i, R[i], Q[i]) >= t[i] - 1e-12 and beta(i, R[i] - 1, Q[i]) < t[i]
+            assert fr.fill_rate[i] == pytest.approx(beta(i, R[i], Q[i]), rel=1e-12)
+
+
+def test_count_fill_rate_joint_quantity_against_scan():
+    rng = np.random.default_rng(53)
+    for _ in range(6):
+        mu = rng.uniform(0.5, 15)
+        D, A, h = rng.uniform(20, 300), rng.uniform(2, 60), rng.uniform(0.5, 4)
+        pol = optimise_policy(D, mu, np.sqrt(mu), A, h, distribution=POISSON, mode="fill_rate", target=0.95,
+                              backorder_basis="per_unit_year")
+        qs = np.arange(1, 200)
+        scan = optimise_policy(np.full(qs.size, D), mu, np.sqrt(mu), A, h, distribution=POISSON,
+                               mode="fill_rate", target=0.95, backorder_basis="per_unit_year",
+                               order_quantity=qs)
+        assert pol.total_cost[0] == pytest.approx(scan.total_cost.min(), rel=1e-12)
+
+
+def test_count_fixed_quantity_reorder_point_against_exhaustive_search():
+    rng = np.random.default_rng(54)
+    for _ in range(10):
+        dist = POISSON if rng.random() < 0.5 else NEGBIN
+        mu = rng.uniform(0.5, 20)
+        var = mu * rng.uniform(1.3, 4) if dist == NEGBIN else mu
+        D, A, h = rng.uniform(10, 300), rng.uniform(1, 50), rng.uniform(0.5, 5)
+        p = h * rng.uniform(1, 30)
+        q = int(rng.integers(1, 60))
+        pol = optimise_policy(D, mu, np.sqrt(var), A, h, distribution=dist, backorder_cost=p,
+                              backorder_basis="per_unit_year", order_quantity=q)
+        k = np.arange(0, 3000)
+        pm = stats.poisson.pmf(k, mu) if dist == POISSON else stats.nbinom.pmf(k, mu * mu / (var - mu),
+                                                                              mu / var)
+        g = {y: h * (np.maximum(y - k, 0) * pm).sum() + p * (np.maximum(k - y, 0) * pm).sum()
+             for y in range(-q - 1, 80 + q + 1)}
+        costs = {r: (A * D + sum(g[y] for y in range(r + 1, r + q + 1))) / q for r in range(-q - 2, 80)}
+        r_best = min(costs, key=costs.get)
+        assert pol.total_cost[0] == pytest.approx(costs[r_best], rel=1e-10)
+        assert pol.note[0] & NOTE_FIXED_Q
