@@ -55,7 +55,8 @@ ST_CUSTOMER_UNITS = 11  # customer demand units at the site
 ST_MEASURED_DAYS = 12  # length of the measured period (same for every site)
 ST_CUSTOMER_IMMEDIATE = 13  # customer units met from stock at once
 ST_AREA_CUSTOMER_BACKORDERS = 14  # integral of backordered customer units
-N_STATS = 15
+ST_WAIT_SQ_UNIT_DAYS = 15  # sum over units shipped to the site of their squared wait
+N_STATS = 16
 
 # task status
 STATUS_OK = 0
@@ -408,6 +409,7 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
                 last_arr[c] = arr
             if w >= 0.0 and measuring:
                 stats[c, ST_WAIT_UNIT_DAYS] += x * w
+                stats[c, ST_WAIT_SQ_UNIT_DAYS] += x * w * w
                 stats[c, ST_SHIPPED_UNITS] += x
             if hn >= heap_cap:
                 return STATUS_HEAP_FULL

@@ -20,7 +20,7 @@ Definitions of the KPIs (all counted after the warm-up):
 * on hand, backorders - time averages in units (backorders include store orders waiting at a warehouse);
 * orders per year - replenishment orders placed by the site;
 * store delay - mean wait, in days, of the units a site ordered from its upstream site between the order and
-  their shipment (unit-weighted; 0 at a root site);
+  their shipment (unit-weighted; 0 at a root site); store delay sd - the standard deviation of that wait;
 * annual costs - ordering (orders x order cost), holding (on hand x holding cost per unit-year), backorder
   (customer units short x cost per unit, or customer backorders x cost per unit-year, by the case's basis).
 """
@@ -170,6 +170,7 @@ class NetworkSimulation:
     customer_backorders: np.ndarray
     customer_units_short_per_day: np.ndarray
     store_delay: np.ndarray
+    store_delay_sd: np.ndarray
     demand_per_day: np.ndarray
     raw: np.ndarray  # (K, n, S, N_STATS) counters from the kernel
     measured_days: float
@@ -506,6 +507,8 @@ def _summarise(stats, act, measured, seeds, tr_items, trace_oh, trace_bo, warmup
         short = np.where(a, (dem - imm) / measured, nan)
         shp = st[..., _k.ST_SHIPPED_UNITS]
         delay = np.where(a & (shp > 0), st[..., _k.ST_WAIT_UNIT_DAYS] / shp, np.where(a, 0.0, nan))
+        delay2 = np.where(a & (shp > 0), st[..., _k.ST_WAIT_SQ_UNIT_DAYS] / shp, np.where(a, 0.0, nan))
+        delay_sd = np.sqrt(np.maximum(delay2 - delay * delay, 0.0))
         dpd = np.where(a, dem / measured, nan)
         cdem = st[..., _k.ST_CUSTOMER_UNITS]
         cimm = st[..., _k.ST_CUSTOMER_IMMEDIATE]
@@ -517,7 +520,8 @@ def _summarise(stats, act, measured, seeds, tr_items, trace_oh, trace_bo, warmup
         fill_rate=fill, cycle_service=cs, on_hand=oh, backorders=bo, orders_per_day=opd,
         units_short_per_day=short, customer_fill_rate=cfill, customer_backorders=cbo,
         customer_units_short_per_day=cshort,
-        store_delay=delay, demand_per_day=dpd, raw=st, measured_days=float(measured), seeds=seeds,
+        store_delay=delay, store_delay_sd=delay_sd, demand_per_day=dpd, raw=st, measured_days=float(measured),
+        seeds=seeds,
         trace_times=times, trace_on_hand=trace_oh, trace_backorders=trace_bo, trace_items=tr_items,
         retries=retries,
     )
@@ -542,7 +546,8 @@ PLANNED_COLUMNS = {
     "total_cost": "total_cost",
 }
 KPI_COLUMNS = ["fill_rate", "customer_fill_rate", "cycle_service", "on_hand", "backorders", "orders_per_year",
-               "store_delay_days", "ordering_cost", "holding_cost", "backorder_cost", "total_cost"]
+               "store_delay_days", "store_delay_sd_days", "ordering_cost", "holding_cost", "backorder_cost",
+               "total_cost"]
 DEMAND_MODELS = ("auto", "poisson", "normal_daily")
 PLANNED_SLACK = 1e-9  # a planned figure equal to an interval end counts as inside
 POISSON_DISPERSION_TOL = 1e-3  # "auto" demand: variance up to (1 + this) x mean counts as Poisson
@@ -767,6 +772,7 @@ def run_simulation(
         "backorders": rows(sim.backorders),
         "orders_per_year": rows(sim.orders_per_day) * dpy,
         "store_delay_days": np.where(parent[jj] >= 0, rows(sim.store_delay), 0.0),
+        "store_delay_sd_days": np.where(parent[jj] >= 0, rows(sim.store_delay_sd), 0.0),
     }
     per_rep["ordering_cost"] = per_rep["orders_per_year"] * order_cost
     per_rep["holding_cost"] = per_rep["on_hand"] * hold
@@ -848,9 +854,9 @@ def simulate_policies(itemsites, policies, settings, *, years: float = 5.0, warm
     DataFrame
         ``site, item, reorder_point, order_quantity, demand_model, demand_per_year`` then for each KPI in
         ``fill_rate, customer_fill_rate, cycle_service, on_hand, backorders, orders_per_year,
-        store_delay_days, ordering_cost, holding_cost, backorder_cost, total_cost`` its mean and ``<kpi>_ci``
-        (95% half-width), then
-        ``planned_<kpi>`` where the policies give it, and ``outside_interval``.
+        store_delay_days, store_delay_sd_days, ordering_cost, holding_cost, backorder_cost, total_cost`` its
+        mean and ``<kpi>_ci`` (95% half-width), then ``planned_<kpi>`` where the policies give it, and
+        ``outside_interval``.
 
     Examples
     --------

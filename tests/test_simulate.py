@@ -137,6 +137,27 @@ def test_two_echelon_one_for_one_stores_match_exact(r0, q0):
     assert np.allclose(delay, wh_bo / sum(lam), rtol=0.05)
 
 
+def test_warehouse_wait_of_one_for_one_orders_matches_exact():
+    """Warehouse base stock S0 (Q0 = 1), Poisson store demand, constant L0, FCFS: the unit demanded n-th is
+    filled by the replenishment triggered S0 demands earlier, so its wait is W = (L0 - G)+ with G ~ Erlang(S0,
+    lambda0) (Higa, I., Feyerherm, A. M. and Machado, A. L., "Waiting time in an (S-1, S) inventory system",
+    Operations Research 23, 1975). E[W] and E[W^2] by numerical integration of P(W > w) = P(G < L0 - w)."""
+    lam, lead0, s0 = [0.5, 0.7], 4.0, 3
+    sim = simulate_network_arrays(np.array([-1, 0, 0]), np.array([s0 - 1, 1, 2]), 1,
+                                  demand_mean=np.array([0.0] + lam), lead_mean=np.array([lead0, 1.0, 2.0]),
+                                  n_items=1, horizon_days=60_000.0, warmup_days=100.0, replications=6,
+                                  seed=31)
+    w = np.linspace(0.0, lead0, 20001)
+    surv = stats.gamma.cdf(lead0 - w, s0, scale=1 / sum(lam))
+    mean_w = np.trapezoid(surv, w)
+    second = np.trapezoid(2 * w * surv, w)
+    sd_w = np.sqrt(second - mean_w**2)
+    for store in (1, 2):
+        assert _within(sim.mean("store_delay")[0, store], sim.half_width("store_delay")[0, store], mean_w)
+        assert _within(sim.mean("store_delay_sd")[0, store], sim.half_width("store_delay_sd")[0, store], sd_w)
+    assert mean_w > 0.5 and sd_w > 0.5
+
+
 # ----------------------------------------------------------------------------------------------------------
 # determinism and settings
 # ----------------------------------------------------------------------------------------------------------
