@@ -137,6 +137,28 @@ def test_two_echelon_one_for_one_stores_match_exact(r0, q0):
     assert np.allclose(delay, wh_bo / sum(lam), rtol=0.05)
 
 
+def test_three_level_serial_one_for_one_matches_exact():
+    """Serial chain supplier -> A -> B -> C, base stock S_j (Q = 1) everywhere, Poisson demand at C, constant
+    lead times: B_A = (D(L_A) - S_A)+, outstanding at B = B_A + D(L_B), B_B = (that - S_B)+, outstanding at C
+    = B_B + D(L_C) (the binomial disaggregation of Graves 1985 with a single child: all of the upstream
+    backorders belong to it). Exact on hand and backorders at C, and at every level, by convolution."""
+    lam, lead, base = 0.8, [3.0, 2.0, 1.5], [3, 2, 2]
+    sim = simulate_network_arrays(np.array([-1, 0, 1]), np.array(base) - 1, 1,
+                                  demand_mean=np.array([0.0, 0.0, lam]), lead_mean=np.array(lead), n_items=1,
+                                  horizon_days=60_000.0, warmup_days=100.0, replications=6, seed=77)
+    k = np.arange(120)
+    back_pmf = np.zeros(k.size)
+    back_pmf[0] = 1.0  # the supplier never runs short
+    for level in range(3):
+        outstanding = np.convolve(back_pmf, stats.poisson.pmf(k, lam * lead[level]))[: k.size]
+        on_hand = np.sum(np.maximum(base[level] - k, 0) * outstanding)
+        back = np.sum(np.maximum(k - base[level], 0) * outstanding)
+        back_pmf = np.zeros(k.size)
+        np.add.at(back_pmf, np.maximum(k - base[level], 0), outstanding)
+        assert _within(sim.mean("on_hand")[0, level], sim.half_width("on_hand")[0, level], on_hand), level
+        assert _within(sim.mean("backorders")[0, level], sim.half_width("backorders")[0, level], back), level
+
+
 def test_warehouse_wait_of_one_for_one_orders_matches_exact():
     """Warehouse base stock S0 (Q0 = 1), Poisson store demand, constant L0, FCFS: the unit demanded n-th is
     filled by the replenishment triggered S0 demands earlier, so its wait is W = (L0 - G)+ with G ~ Erlang(S0,
