@@ -81,8 +81,23 @@ def _csv_frame(policies: pd.DataFrame) -> pd.DataFrame:
     out = policies.copy()
     if np.issubdtype(out["distribution"].dtype, np.number):
         out["distribution"] = distribution_names(out["distribution"].to_numpy())
-    out["note"] = [note_words(int(f)) if not isinstance(f, str) else f for f in out["note"]]
+    if not pd.api.types.is_object_dtype(out["note"]):
+        words = {int(f): note_words(int(f)) for f in np.unique(out["note"].to_numpy())}
+        out["note"] = out["note"].map(words)
     return out
+
+
+def _text_frame(frame: pd.DataFrame) -> pd.DataFrame:
+    """Every cell as text: floats with 6 significant digits (empty for NaN), the rest as they are."""
+    out: dict[str, Any] = {}
+    for column in frame.columns:
+        values = frame[column]
+        if pd.api.types.is_float_dtype(values):
+            # formatting number by number in Python beats pandas' float_format path several times over
+            out[column] = ["" if v != v else f"{v + 0.0:.6g}" for v in values.tolist()]
+        else:
+            out[column] = values.to_numpy()
+    return pd.DataFrame(out, index=frame.index)
 
 
 def _with_current(frame: pd.DataFrame, current: pd.DataFrame | None) -> pd.DataFrame:
@@ -331,21 +346,20 @@ def write_outputs(
     written: list[str] = []
     try:
         frame = _csv_frame(result.policies)
-        _with_current(frame, result.current).to_csv(temp / "policies.csv", index=False, float_format="%.6g")
+        text = _text_frame(_with_current(frame, result.current))
+        text.to_csv(temp / "policies.csv", index=False)
         written.append("policies.csv")
         totals = {row["site"]: row for row in result.site_totals.to_dict(orient="records")}
         for site, part in frame.groupby("site", sort=False):
             folder = temp / "sites" / str(site)
             folder.mkdir(parents=True)
-            _with_current(part, result.current).to_csv(
-                folder / "policies.csv", index=False, float_format="%.6g"
-            )
+            text.loc[part.index].to_csv(folder / "policies.csv", index=False)
             (folder / "summary.md").write_text(
                 _site_summary(result, str(site), totals[site], part), encoding="utf-8"
             )
             written += [f"sites/{site}/policies.csv", f"sites/{site}/summary.md"]
         if result.comparison is not None:
-            result.comparison.to_csv(temp / "comparison.csv", index=False, float_format="%.6g")
+            _text_frame(result.comparison).to_csv(temp / "comparison.csv", index=False)
             written.append("comparison.csv")
         summary = _summary_json(result, case_name or result.settings.name, case_path)
         (temp / "summary.json").write_text(
