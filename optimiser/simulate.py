@@ -908,6 +908,26 @@ def _plot_traces(traces, folder: Path) -> list[str]:
     return written
 
 
+def _totals(tab) -> dict[str, Any]:
+    """Totals of a part of the simulation table: sums of costs and stock, demand-weighted fill rate."""
+    demand = tab["demand_per_year"].fillna(0.0).to_numpy(float)
+    fill = tab["fill_rate"].to_numpy(float)
+    ok = np.isfinite(fill) & (demand > 0)
+    out: dict[str, Any] = {
+        "item_sites": len(tab),
+        "demand_per_year": float(demand.sum()),
+        "fill_rate": float(np.sum(fill[ok] * demand[ok]) / demand[ok].sum()) if ok.any() else None,
+        "on_hand": float(tab["on_hand"].sum()),
+        "backorders": float(tab["backorders"].sum()),
+    }
+    for name in ("ordering_cost", "holding_cost", "backorder_cost", "total_cost"):
+        out[name] = float(tab[name].sum())
+        if f"planned_{name}" in tab:
+            out[f"planned_{name}"] = float(tab[f"planned_{name}"].sum())
+    out["item_sites_outside_interval"] = int((tab["outside_interval"] != "").sum())
+    return out
+
+
 def _safe_name(text: str) -> str:
     return "".join(c if c.isalnum() or c in "-_." else "_" for c in text)
 
@@ -965,10 +985,8 @@ def write_simulation(outcome: SimulationOutcome, out_dir: str | Path, *, case_na
             "created": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
             "case": {"name": case_name, "path": case_path},
             "run": outcome.info,
-            "network": {
-                "total_cost": float(tab["total_cost"].sum()),
-                "item_sites_outside_interval": int((tab["outside_interval"] != "").sum()),
-            },
+            "network": _totals(tab),
+            "sites": {str(site): _totals(part) for site, part in tab.groupby("site", sort=False)},
         }
         (temp / "summary.json").write_text(json.dumps(_clean(summary), indent=2, ensure_ascii=False) + "\n",
                                            encoding="utf-8")

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -555,6 +557,13 @@ def test_rqnet_simulate_command(case_writer, tmp_path):
                 "backorders_ci", "orders_per_year", "outside_interval"):
         assert col in frame.columns
     assert (out / "summary.json").exists() and list(out.glob("trace_*.png"))
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["tool"] == "rqnet" and summary["command"] == "simulate"
+    assert np.isclose(summary["network"]["total_cost"], frame["total_cost"].sum())
+    assert np.isclose(sum(v["total_cost"] for v in summary["sites"].values()), frame["total_cost"].sum())
+    s1 = frame[frame["site"] == "s1"]
+    assert np.isclose(summary["sites"]["s1"]["fill_rate"],
+                      np.sum(s1["fill_rate"] * s1["demand_per_year"]) / s1["demand_per_year"].sum())
     assert main(args) == 0  # replaces its own earlier output; same seed, same numbers
     assert (out / "simulation.csv").read_text() == first
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".sim.")]
