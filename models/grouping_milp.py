@@ -64,6 +64,8 @@ GRID_RATIO = 1.002
 MAX_GRID = 4000
 #: default relative MIP gap asked of HiGHS (a smaller gap than this is reported as optimal)
 MIP_GAP = 1e-7
+#: HiGHS threads per solve
+HIGHS_THREADS = 1
 #: default solver time limit in seconds
 TIME_LIMIT = 60.0
 #: z limits of the normal approximation
@@ -409,26 +411,49 @@ def _k_set(k_max: int, powers_of_two: bool) -> np.ndarray:
     return np.arange(1, k_max + 1)
 
 
-def _item_costs(fam: Family, T: np.ndarray, ks: np.ndarray):
-    """Costs of (candidate, item, multiple): shape (c, n, K); also z and sigma."""
+def _ss_cost_at(fam: Family, tau: np.ndarray, item: np.ndarray) -> np.ndarray:
+    """Safety-stock and backorder cost of items ``item`` at intervals ``tau`` (flat arrays)."""
+    cost, _, _ = periodic_review_cost(
+        tau, fam.annual_demand[item], fam.demand_var[item], fam.lead_time[item], fam.lead_time_sd[item],
+        fam.holding_cost[item], fam.backorder_cost[item], backorder_basis=fam.backorder_basis, mode=fam.mode,
+        target=None if fam.target is None else fam.target[item],
+    )
+    return cost
+
+
+def _deterministic_costs(fam: Family, T: np.ndarray, ks: np.ndarray) -> np.ndarray:
+    """Minor order cost + cycle stock of (candidate, item, multiple), inf beyond the shelf life."""
     tau = T[:, None, None] * ks[None, None, :]
     H = (fam.holding_cost * fam.annual_demand)[None, :, None]
     det = fam.minor_cost[None, :, None] / tau + 0.5 * tau * H
-    tgt = None if fam.target is None else fam.target[None, :, None]
-    ss, z, sig = periodic_review_cost(
-        tau,
-        fam.annual_demand[None, :, None],
-        fam.demand_var[None, :, None],
-        fam.lead_time[None, :, None],
-        fam.lead_time_sd[None, :, None],
-        fam.holding_cost[None, :, None],
-        fam.backorder_cost[None, :, None],
-        backorder_basis=fam.backorder_basis,
-        mode=fam.mode,
-        target=tgt,
-    )
-    cost = det + ss
-    cost = np.where(tau <= fam.max_interval[None, :, None] * (1 + 1e-12), cost, np.inf)
+    return np.where(tau <= fam.max_interval[None, :, None] * (1 + 1e-12), det, np.inf)
+
+
+def _item_costs(fam: Family, T: np.ndarray, ks: np.ndarray, det: np.ndarray | None = None) -> np.ndarray:
+    """Costs of (candidate, item, multiple), shape (c, n, K); inf where not allowed or dominated.
+
+    The safety-stock part (>= 0) is evaluated only where it can matter: for every multiple up to the
+    deterministic best ``kd`` and for larger ones whose deterministic cost alone stays below the total at
+    ``kd``; any other larger multiple costs more than ``kd`` while loading the vehicle more, so it is
+    dominated (set to inf).
+    """
+    if det is None:
+        det = _deterministic_costs(fam, T, ks)
+    c, n, K = det.shape
+    sigma0 = (fam.demand_var == 0) & (fam.lead_time_sd == 0)
+    if np.all(sigma0):
+        return det
+    kd = np.argmin(det, axis=2)
+    det_kd = np.take_along_axis(det, kd[:, :, None], axis=2)[:, :, 0]
+    ci, ii = np.nonzero(np.isfinite(det_kd))
+    ss_kd = np.zeros((c, n))
+    ss_kd[ci, ii] = _ss_cost_at(fam, T[ci] * ks[kd[ci, ii]], ii)
+    kidx = np.arange(K)[None, None, :]
+    need = np.isfinite(det) & ~sigma0[None, :, None]
+    need &= (kidx <= kd[:, :, None]) | (det <= (det_kd + ss_kd)[:, :, None] * (1 + 1e-12))
+    cost = np.where((kidx > kd[:, :, None]) & ~need & ~sigma0[None, :, None], np.inf, det)
+    cc, jj, kk = np.nonzero(need)
+    cost[cc, jj, kk] = det[cc, jj, kk] + _ss_cost_at(fam, T[cc] * ks[kk], jj)
     return cost
 
 
@@ -796,6 +821,8 @@ def _solve(m, time_limit: float, mip_gap: float, solver: str, warm: bool = False
     opt.config.time_limit = float(time_limit)
     opt.config.mip_gap = float(mip_gap)
     opt.config.warmstart = bool(warm)
+    # one thread: the models left after pruning are small, and starting HiGHS's thread pool costs more
+    opt.highs_options = {"threads": HIGHS_THREADS}
     res = opt.solve(m)
     tc = res.termination_condition.name
     has = res.best_feasible_objective is not None
@@ -954,11 +981,22 @@ def solve_family(
         special.extend((fam.min_order_value / v1[v1 > 0]).tolist())
     special = np.asarray(special, dtype=float)
     special = special[(special >= r_lo * (1 - 1e-12)) & (special <= r_hi * (1 + 1e-12))]
+    if _SPECIAL_POINTS:  # the probe points are candidates too, so their cost may prune the others
+        inside = (probe >= r_lo * (1 - 1e-12)) & (probe <= r_hi * (1 + 1e-12))
+        special = np.concatenate((special, probe[inside]))
     T = np.unique(np.concatenate((grid, special)))
     n_cand = T.size
 
     # ---- costs, dominance, Lagrangian bounds, pruning
-    cost = _item_costs(fam, T, ks)  # (c, n, K)
+    det = _deterministic_costs(fam, T, ks)
+    if _SPECIAL_POINTS and math.isfinite(ub):
+        # safety stock >= 0: S/T + sum_i min_k (deterministic cost) bounds every policy at T from below
+        lb0 = S / T + np.min(det, axis=2).sum(axis=1)
+        first = lb0 <= ub * (1 + 1e-9) + 1e-12
+        if np.any(first):
+            T, det = T[first], det[first]
+    cost = _item_costs(fam, T, ks, det)  # (c, n, K)
+    del det
     kbest = np.argmin(cost, axis=2)  # first minimiser = the unconstrained best multiple
     K_use = int(kbest.max()) + 1
     cost = cost[:, :, :K_use]
