@@ -1140,6 +1140,15 @@ def run(args) -> int:
           f"{info['years']:g} years; simulated total cost {tab['total_cost'].sum():,.0f} {cur} a year")
     if "planned_total_cost" in tab:
         print(f"planned total cost {tab['planned_total_cost'].sum():,.0f} {cur} a year")
+    planned = "planned_total_cost" in tab
+    head = f"  {'site':<16} {'fill rate':>9} {'on hand':>10} {'backorders':>10} {'cost a year':>13}"
+    print(head + (f" {'planned':>13}" if planned else ""))
+    for site, part in tab.groupby("site", sort=False):
+        t = _totals(part)
+        fill = "n/a" if t["fill_rate"] is None else f"{100 * t['fill_rate']:.1f} %"
+        line = (f"  {str(site):<16} {fill:>9} {t['on_hand']:>10,.0f} {t['backorders']:>10,.1f} "
+                f"{t['total_cost']:>13,.0f}")
+        print(line + (f" {t['planned_total_cost']:>13,.0f}" if planned else ""))
     off = int((tab["outside_interval"] != "").sum())
     print(f"{off} item-site(s) with a planned figure outside the simulation's 95% interval")
     print(f"results in {args.out}")
