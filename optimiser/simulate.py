@@ -908,6 +908,21 @@ def _plot_traces(traces, folder: Path) -> list[str]:
     return written
 
 
+def _check_not_other_command(target: Path) -> None:
+    """Replace only an earlier simulation: a plan or grouping output in the way is kept."""
+    from optimiser.errors import OutputError
+
+    marker = target / "summary.json"
+    if not marker.is_file():
+        return
+    try:
+        command = json.loads(marker.read_text(encoding="utf-8")).get("command")
+    except (OSError, ValueError, AttributeError):
+        command = None
+    if command != "simulate":
+        raise OutputError(f"{target} holds the results of 'rqnet {command}'; choose another folder for --out")
+
+
 def _totals(tab) -> dict[str, Any]:
     """Totals of a part of the simulation table: sums of costs and stock, demand-weighted fill rate."""
     demand = tab["demand_per_year"].fillna(0.0).to_numpy(float)
@@ -968,6 +983,7 @@ def write_simulation(outcome: SimulationOutcome, out_dir: str | Path, *, case_na
 
     target = Path(out_dir).resolve()
     _check_target(target)
+    _check_not_other_command(target)
     target.parent.mkdir(parents=True, exist_ok=True)
     temp = Path(tempfile.mkdtemp(prefix=f".{target.name}.tmp-", dir=target.parent))
     written: list[str] = []
@@ -1094,6 +1110,13 @@ def run(args) -> int:
     from optimiser.itemsites import build_itemsites
 
     say = progress_printer(args)
+    out_dir = Path(args.out).resolve()
+    for given_file in (args.policies, args.groups):
+        if given_file is not None and out_dir in Path(given_file).resolve().parents:
+            print(f"rqnet: {given_file} lies inside --out {args.out}, which would be replaced; choose "
+                  "another folder for --out", file=sys.stderr)
+            print("rqnet: nothing was written", file=sys.stderr)
+            return EXIT_BAD_INPUT
     say(f"reading case {args.case}")
     case = load_case(args.case)
     say(f"reading policies {args.policies}")

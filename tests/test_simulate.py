@@ -593,6 +593,16 @@ def test_rqnet_simulate_refuses_bad_policies_and_foreign_folders(case_writer, tm
             "--years", "1", "--replications", "2", "-q"]
     assert main(args) == 2
     assert (foreign / "notes.txt").read_text() == "keep me"
+    # a plan's output folder is not replaced by a simulation, nor a folder holding the policies file
+    plan_out = tmp_path / "plan"
+    plan_out.mkdir()
+    (plan_out / "summary.json").write_text('{"tool": "rqnet", "command": "plan"}')
+    args[args.index("--out") + 1] = str(plan_out)
+    assert main(args) == 2 and (plan_out / "summary.json").exists()
+    inside = plan_out / "pol.csv"
+    inside.write_text((tmp_path / "pol.csv").read_text())
+    args[args.index("--policies") + 1] = str(inside)
+    assert main(args) == 2 and inside.exists()
 
 
 def test_rqnet_simulate_with_groups(case_writer, tmp_path):
