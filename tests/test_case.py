@@ -13,9 +13,21 @@ import textwrap
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
-from optimiser.case import load_case, load_policies_for_case
+from optimiser.case import (
+    HISTORY_COLUMNS,
+    ITEMS_COLUMNS,
+    POLICIES_COLUMNS,
+    STOCKING_COLUMNS,
+    _parse_cell,
+    _parse_column,
+    load_case,
+    load_policies_for_case,
+)
 from optimiser.cli import main
 from optimiser.errors import CaseError
 from tests.conftest import BASE_FILES, write_case
@@ -466,3 +478,56 @@ def test_demo_and_quickstart_cases_are_valid() -> None:
     for name in ("demo", "quickstart", "quickstart-history"):
         case = load_case(root / name)
         assert not [w for w in case.warnings if "not used" in w], (name, case.warnings)
+
+
+TOKENS = [
+    "",
+    "1",
+    "-1",
+    "0",
+    "0.5",
+    "1.5",
+    "2",
+    "nan",
+    "NaN",
+    "inf",
+    "-inf",
+    "1e400",
+    "1_000",
+    "abc",
+    "1,5",
+    "+3",
+    "1e-3",
+    "0x10",
+    "2025-02-30",
+    "2025-03-01",
+    "03/01/2025",
+    "Normal",
+    "poisson",
+    "gamma",
+    "AUTO",
+]
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    st.lists(st.sampled_from(TOKENS), min_size=1, max_size=12),
+    st.sampled_from(
+        [c for spec in (ITEMS_COLUMNS, STOCKING_COLUMNS, HISTORY_COLUMNS, POLICIES_COLUMNS) for c in spec]
+    ),
+)
+def test_column_parser_agrees_with_cell_parser(cells: list[str], col) -> None:
+    """The vectorised column parser refuses exactly the cells the cell parser refuses (brute force)."""
+    values, bad = _parse_column(pd.Series(cells, dtype=object), col)
+    for k, raw in enumerate(cells):
+        try:
+            expected = _parse_cell(raw, col, "f.csv", k + 2)
+        except CaseError:
+            assert bad[k], (raw, col.name)
+            continue
+        assert not bad[k], (raw, col.name)
+        got = values[k] if not isinstance(values, pd.Series) else values.iloc[k]
+        if isinstance(expected, float) and math.isnan(expected):
+            assert math.isnan(got)
+        else:
+            assert got == expected, (raw, col.name)
