@@ -75,6 +75,25 @@ def test_many_items_at_once_match_each_exact():
         assert _within(sim.mean("on_hand")[i, 0], sim.half_width("on_hand")[i, 0], on_hand)
 
 
+def test_items_may_have_their_own_trees():
+    """parent may differ per item: item 1's store buys straight from the supplier (and the warehouse does not
+    stock it), so it is a single site with the exact single-site values."""
+    parent = np.array([[-1, 0], [-1, -1]])
+    active = np.array([[True, True], [False, True]])
+    sim = simulate_network_arrays(parent, np.array([[4, 2], [0, 3]]), np.array([[5, 2], [1, 4]]),
+                                  demand_mean=np.array([[0.0, 1.0], [0.0, 1.2]]), lead_mean=2.0,
+                                  active=active, horizon_days=40_000.0, warmup_days=50.0, replications=6,
+                                  seed=8)
+    fill, on_hand, _ = _exact_single(3, 4, 1.2 * 2.0)
+    assert _within(sim.mean("fill_rate")[1, 1], sim.half_width("fill_rate")[1, 1], fill)
+    assert _within(sim.mean("on_hand")[1, 1], sim.half_width("on_hand")[1, 1], on_hand)
+    assert np.isnan(sim.mean("on_hand")[1, 0]) and sim.mean("store_delay")[1, 1] == 0.0
+    assert sim.mean("store_delay")[0, 1] > 0.0
+    with pytest.raises(ValueError, match="upstream"):
+        simulate_network_arrays(np.array([-1, 0]), 1, 2, demand_mean=[0.0, 1.0], lead_mean=1.0,
+                                active=np.array([False, True]), n_items=1, horizon_days=10.0)
+
+
 # ----------------------------------------------------------------------------------------------------------
 # exact two-echelon, one-for-one stores, Poisson demand, constant lead times, FCFS
 # Graves, S. C., "A multi-echelon inventory model for a repairable item with one-for-one replenishment",
