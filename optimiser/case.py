@@ -406,14 +406,19 @@ def _check_known(
     where: str,
     allow_empty: bool = False,
 ) -> None:
-    known_set = set(known)
-    for value, row in zip(frame[column], frame["rownum"], strict=True):
-        if allow_empty and value == "":
-            continue
-        if value not in known_set:
-            raise CaseError(
-                label, f"unknown {what} (not in {where})", row=int(row), column=column, value=value
-            )
+    values = frame[column]
+    unknown = ~values.isin(list(known))
+    if allow_empty:
+        unknown &= values != ""
+    if unknown.any():
+        k = int(np.flatnonzero(unknown.to_numpy())[0])
+        raise CaseError(
+            label,
+            f"unknown {what} (not in {where})",
+            row=int(frame["rownum"].iloc[k]),
+            column=column,
+            value=values.iloc[k],
+        )
 
 
 # --------------------------------------------------------------------------------------------- settings
