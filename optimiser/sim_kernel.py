@@ -18,7 +18,8 @@ Mechanics (all quantities in whole units):
   quantity can go (and blocks the orders behind it). Customer demand is always served partially;
 * complete backordering; supplier stock is unlimited;
 * lead times (supplier lead time at a root, transit below) are gamma with the given mean and sd (constant when
-  sd = 0). Without crossing, each arrival at a site is no earlier than the one scheduled before it.
+  sd = 0). Without crossing, each arrival of an item at a site is no earlier than the one scheduled
+  before it (items travel independently).
 
 Every task fills a row of statistics per site (``ST_*`` below), counted after the warm-up.
 """

@@ -293,7 +293,8 @@ def simulate_network_arrays(
     partial_shipments : bool
         Whether an upstream site ships part of a waiting order (True) or only whole orders (False).
     orders_cross : bool
-        False: each arrival at a site is no earlier than the one scheduled before it.
+        False: each arrival of an item at a site is no earlier than the one scheduled before it (a
+        later draw that would overtake waits for it); True: every shipment keeps its own lead time.
     trace_items : array_like of int, optional
         Items whose on hand and backorders per site are recorded on replication 0 every ``trace_step_days``.
     parallel : bool
