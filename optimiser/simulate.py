@@ -27,6 +27,7 @@ Definitions of the KPIs (all counted after the warm-up):
 
 from __future__ import annotations
 
+import argparse
 import json
 import os
 import shutil
@@ -35,12 +36,14 @@ import tempfile
 import time
 import warnings
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pandas as pd
+from numpy.typing import ArrayLike
 from scipy import stats as _sps
 
 from optimiser import sim_kernel as _k
@@ -180,7 +183,6 @@ class NetworkSimulation:
     trace_backorders: np.ndarray
     trace_items: np.ndarray
     retries: int = 0
-    info: dict[str, Any] = field(default_factory=dict)
 
     def mean(self, name: str) -> np.ndarray:
         """Mean over replications of KPI ``name`` -> (n, S)."""
@@ -226,19 +228,19 @@ def _validate_parent(parent: np.ndarray) -> None:
 
 
 def simulate_network_arrays(
-    parent,
-    reorder_point,
-    order_quantity,
+    parent: ArrayLike,
+    reorder_point: ArrayLike,
+    order_quantity: ArrayLike,
     *,
-    demand_mean,
-    lead_mean,
-    demand_sd=None,
-    demand_model=DEMAND_POISSON,
-    lead_sd=0.0,
-    review_period=None,
-    order_up_to=None,
-    review_phase=None,
-    active=None,
+    demand_mean: ArrayLike,
+    lead_mean: ArrayLike,
+    demand_sd: ArrayLike | None = None,
+    demand_model: ArrayLike = DEMAND_POISSON,
+    lead_sd: ArrayLike = 0.0,
+    review_period: ArrayLike | None = None,
+    order_up_to: ArrayLike | None = None,
+    review_phase: ArrayLike | None = None,
+    active: ArrayLike | None = None,
     n_items: int | None = None,
     horizon_days: float,
     warmup_days: float = 0.0,
@@ -246,10 +248,10 @@ def simulate_network_arrays(
     seed: int = 0,
     partial_shipments: bool = True,
     orders_cross: bool = False,
-    trace_items=None,
+    trace_items: ArrayLike | None = None,
     trace_step_days: float = 1.0,
     parallel: bool = True,
-    task_seeds=None,
+    task_seeds: ArrayLike | None = None,
     progress: Callable[[int, int], None] | None = None,
 ) -> NetworkSimulation:
     """Simulate (R, Q) / order-up-to policies on a site forest for many items and replications.
@@ -570,8 +572,8 @@ class SimulationOutcome:
         Settings of the run and totals (demand events, seconds, ...).
     """
 
-    table: Any
-    traces: Any
+    table: pd.DataFrame
+    traces: pd.DataFrame
     info: dict[str, Any]
 
 
@@ -590,9 +592,9 @@ def _site_order(itemsites) -> tuple[list[str], dict[str, int], np.ndarray]:
 
 
 def run_simulation(
-    itemsites,
-    policies,
-    settings,
+    itemsites: pd.DataFrame,
+    policies: pd.DataFrame,
+    settings: Any,
     *,
     years: float = 5.0,
     warmup_years: float = 0.5,
@@ -601,7 +603,7 @@ def run_simulation(
     partial_shipments: bool = True,
     orders_cross: bool = False,
     demand_model: str = "auto",
-    trace_items=None,
+    trace_items: list[str] | None = None,
     trace_step_days: float = 1.0,
     progress: Callable[[str], None] | None = None,
 ) -> SimulationOutcome:
@@ -661,8 +663,6 @@ def run_simulation(
     ----------
     Law, A. M., Simulation Modeling and Analysis, 5th ed., 2015.
     """
-    import pandas as pd
-
     t_start = time.perf_counter()
     need = ["site", "item", "upstream", "daily_mean", "daily_sd", "lead_days", "lead_days_sd", "order_cost",
             "holding_cost", "backorder_cost"]
@@ -838,8 +838,9 @@ def _mean0(a: np.ndarray) -> np.ndarray:
         return np.nanmean(a, axis=0)
 
 
-def simulate_policies(itemsites, policies, settings, *, years: float = 5.0, warmup_years: float = 0.5,
-                      replications: int = 10, seed: int = 0, **options: Any):
+def simulate_policies(itemsites: pd.DataFrame, policies: pd.DataFrame, settings: Any, *, years: float = 5.0,
+                      warmup_years: float = 0.5, replications: int = 10, seed: int = 0,
+                      **options: Any) -> pd.DataFrame:
     """Simulate given policies and return the table of :class:`SimulationOutcome` (one row per site, item).
 
     Parameters
@@ -1042,7 +1043,7 @@ COMMAND_DESCRIPTION = (
 )
 
 
-def add_arguments(parser) -> None:
+def add_arguments(parser: argparse.ArgumentParser) -> None:
     """Arguments of ``rqnet simulate``."""
     parser.add_argument("case", metavar="CASE", type=Path, help="the case folder")
     parser.add_argument("--policies", metavar="FILE", type=Path, required=True,
@@ -1075,8 +1076,6 @@ def add_arguments(parser) -> None:
 
 def _merge_groups(given, path: Path, itemsites):
     """Add ``order_interval_days, order_up_to`` from a groups file to the policies frame."""
-    import pandas as pd
-
     try:
         groups = pd.read_csv(path, dtype={"site": str, "item": str}, keep_default_na=False, na_values=[""])
     except (OSError, ValueError) as exc:
@@ -1102,10 +1101,8 @@ def _merge_groups(given, path: Path, itemsites):
     return given.merge(groups, on=["site", "item"], how="left")
 
 
-def run(args) -> int:
+def run(args: argparse.Namespace) -> int:
     """Run ``rqnet simulate``; returns the exit code."""
-    import pandas as pd
-
     from optimiser.case import load_case, load_policies_for_case
     from optimiser.cli import EXIT_BAD_INPUT, EXIT_OK, progress_printer
     from optimiser.itemsites import build_itemsites
