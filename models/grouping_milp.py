@@ -48,7 +48,7 @@ from __future__ import annotations
 
 import math
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy.optimize import minimize_scalar
@@ -1087,3 +1087,377 @@ def solve_family(
         return rand_fallback("fallback", f"solver ended '{tc}'; RAND heuristic used, not proven optimal")
     info["candidate_cycle"] = float(Tk[c0])
     return finish(status, msg, T_fin, k_sol, cand_cost, bound, gap, n_cand, int(Tk.size), nvar, tol_ok, info)
+
+
+# --------------------------------------------------------------------------- shared runs
+@dataclass(frozen=True)
+class SharedRun:
+    """A consolidated pickup several families (suppliers) may join.
+
+    Attributes
+    ----------
+    fixed_cost : float
+        Cost of one run (per base cycle while at least one family has joined).
+    members : tuple of int
+        Indices of the families allowed to join.
+    capacity_volume, capacity_weight : float
+        Capacity of the run's vehicle (inf = none); a joined family's own capacity no longer applies.
+    join_cost : tuple of float, optional
+        Per member, the order cost it still pays per order when it rides the run (default 0: the run
+        replaces the supplier's own order cost).
+    """
+
+    fixed_cost: float
+    members: tuple[int, ...]
+    capacity_volume: float = math.inf
+    capacity_weight: float = math.inf
+    join_cost: tuple[float, ...] | None = None
+
+
+@dataclass(frozen=True)
+class SharedRunSolution:
+    """Result of :func:`solve_shared_runs`.
+
+    Attributes
+    ----------
+    status, message : str
+        As in :class:`FamilySolution`; ``"fallback"`` means every family was solved alone.
+    cycle : numpy.ndarray
+        Base cycle per family (years).
+    multiples : list of numpy.ndarray
+    joined : numpy.ndarray of int
+        Run index per family, -1 = orders alone.
+    run_cycle : numpy.ndarray
+        Cycle of each run (NaN when nobody joins it).
+    family_cost : numpy.ndarray
+        Per family: its own (or join) order cost per year + its items' costs (the run's cost excluded).
+    run_cost : numpy.ndarray
+        Per run: fixed cost per year.
+    total_cost, standalone_cost : float
+        Whole answer, and every family alone by :func:`solve_family` (the baseline, same run).
+    bound, gap : float
+        Solver bound and relative gap over the candidate set.
+    feasible : bool
+        Independent check of every constraint.
+    seconds : float
+    """
+
+    status: str
+    message: str
+    cycle: np.ndarray
+    multiples: list
+    joined: np.ndarray
+    run_cycle: np.ndarray
+    family_cost: np.ndarray
+    run_cost: np.ndarray
+    total_cost: float
+    standalone_cost: float
+    bound: float
+    gap: float
+    feasible: bool
+    seconds: float
+
+
+def _group_check(fams: list[Family], ks: list[np.ndarray], T: float, run: SharedRun | None,
+                 members: list[int]) -> tuple[bool, list[str]]:
+    """Constraints of families sharing one cycle T (a run: run capacity replaces their own)."""
+    viol = []
+    for f in members:
+        fam = fams[f]
+        if run is not None:
+            fam = Family(**{**fam.__dict__, "capacity_volume": math.inf, "capacity_weight": math.inf})
+        ok, _, v = check_policy(fam, T, ks[f])
+        viol.extend(f"family {f}: {x}" for x in v)
+    if run is not None:
+        for name, cap, attr in (("run capacity_volume", run.capacity_volume, "volume"),
+                                ("run capacity_weight", run.capacity_weight, "weight")):
+            if math.isfinite(cap):
+                load = sum(float(np.sum(fams[f].annual_demand * getattr(fams[f], attr) * ks[f])) * T
+                           for f in members)
+                if load > cap * (1 + CHECK_TOL):
+                    viol.append(f"{name}: combined largest order {load:.6g} exceeds {cap:.6g}")
+    return not viol, viol
+
+
+def _group_polish(fams: list[Family], ks: list[np.ndarray], members: list[int], major: float, T0: float,
+                  run: SharedRun | None) -> float:
+    """Re-optimise the common cycle of ``members`` for fixed multiples within its feasible interval."""
+    lo, hi = 0.0, math.inf
+    for f in members:
+        fam = fams[f]
+        if run is not None:
+            fam = Family(**{**fam.__dict__, "capacity_volume": math.inf, "capacity_weight": math.inf})
+        a, b = _interval_for(fam, ks[f])
+        lo, hi = max(lo, a), min(hi, b)
+    if run is not None:
+        for cap, attr in ((run.capacity_volume, "volume"), (run.capacity_weight, "weight")):
+            load = sum(float(np.sum(fams[f].annual_demand * getattr(fams[f], attr) * ks[f])) for f in members)
+            if math.isfinite(cap) and load > 0:
+                hi = min(hi, cap / load)
+    if not (lo <= T0 * (1 + 1e-12) and T0 <= hi * (1 + 1e-12)):
+        return T0
+
+    def total(x: float) -> float:
+        return major / x + sum(float(_policy_cost(fams[f], x, ks[f])[0].sum()) for f in members)
+
+    cands = [T0]
+    a, b = max(lo, T0 * 1e-3), min(hi, T0 * 1e3)
+    if a < b:
+        r = minimize_scalar(lambda u: total(math.exp(u)), bounds=(math.log(a), math.log(b)), method="bounded",
+                            options={"xatol": 1e-10})
+        cands += [math.exp(float(r.x)), a, b]
+    return cands[int(np.argmin([total(x) for x in cands]))]
+
+
+def solve_shared_runs(
+    fams: list[Family],
+    runs: list[SharedRun],
+    *,
+    k_max: int = K_MAX,
+    grid_ratio: float = 1.01,
+    time_limit: float = TIME_LIMIT,
+    mip_gap: float = MIP_GAP,
+) -> SharedRunSolution:
+    """Decide which families join which shared run, with every family's cycle and multiples.
+
+    Parameters
+    ----------
+    fams : list of Family
+        From :func:`make_family`.
+    runs : list of SharedRun
+    k_max : int
+        Largest multiple.
+    grid_ratio : float
+        Ratio between neighbouring candidate cycles of the common grid.
+    time_limit, mip_gap
+        As in :func:`solve_family`.
+
+    Returns
+    -------
+    SharedRunSolution
+
+    Notes
+    -----
+    Binary ``own[f,c]`` (family f orders alone every ``T_c``), ``w[f,r,c]`` (f rides run r every ``T_c``),
+    ``z[r,c]`` (run r goes every ``T_c``), ``x[f,i,c,k]``. Objective: ``S_f/T_c own + J_f/T_c w +
+    F_r/T_c z + cost x``. Constraints: one mode and cycle per family; one multiple per item under it;
+    ``w <= z``; at most one cycle per run; the family's own capacity unless it rides a run (big-M: its
+    largest possible load at ``T_c``); the run capacity over the families riding it (same big-M for members
+    at ``T_c`` that do not ride); the minimum order value in every mode; shelf life by construction. The
+    candidate grid is common to all families and holds each family's own optimal cycle, so the answer is
+    never worse than every family alone; no grid tolerance is claimed here. Candidates whose bound cannot
+    beat the all-alone answer are dropped; afterwards each group's common cycle is re-optimised for the
+    chosen multiples.
+
+    References
+    ----------
+    Goyal, S. K. (1974). Determination of optimum packaging frequency of items jointly replenished.
+    Management Science 21(4), 436-443.
+
+    Examples
+    --------
+    >>> a = make_family(100.0, [5.0], [2.0], [300.0])
+    >>> b = make_family(100.0, [5.0], [2.0], [200.0])
+    >>> r = solve_shared_runs([a, b], [SharedRun(fixed_cost=120.0, members=(0, 1))])
+    >>> r.joined.tolist(), r.total_cost < r.standalone_cost
+    ([0, 0], True)
+    """
+    t_start = time.perf_counter()
+    nf = len(fams)
+    if nf == 0:
+        raise ValueError("fams must hold at least one family")
+    for r_i, run in enumerate(runs):
+        if not run.members or any(not (0 <= m < nf) for m in run.members):
+            raise ValueError(f"run {r_i}: members must be indices of families, got {run.members!r}")
+        if not (math.isfinite(run.fixed_cost) and run.fixed_cost >= 0):
+            raise ValueError(f"run {r_i}: fixed_cost must be finite and >= 0, got {run.fixed_cost!r}")
+        if run.join_cost is not None and len(run.join_cost) != len(run.members):
+            raise ValueError(f"run {r_i}: join_cost needs one value per member")
+    ks = _k_set(int(k_max), False)
+    alone = [solve_family(f, k_max=k_max, time_limit=time_limit, mip_gap=mip_gap) for f in fams]
+    standalone = float(sum(a.total_cost for a in alone))
+
+    def fallback(msg: str) -> SharedRunSolution:
+        fc = np.array([a.total_cost for a in alone])
+        return SharedRunSolution(
+            "fallback", msg, np.array([a.cycle for a in alone]), [a.multiples for a in alone],
+            np.full(nf, -1), np.full(len(runs), np.nan), fc, np.zeros(len(runs)), standalone, standalone,
+            math.nan, math.nan, all(a.feasible for a in alone), time.perf_counter() - t_start)
+
+    if not runs:
+        return fallback("no shared runs given: every family orders alone")
+    join = {}
+    for r_i, run in enumerate(runs):
+        jc = run.join_cost or tuple(0.0 for _ in run.members)
+        for m, j in zip(run.members, jc, strict=True):
+            join[(m, r_i)] = float(j)
+    # common candidate grid for the runs: spans every family's range, lowered for cheaper majors when riding
+    lo = min(a.extra.get("range", (a.cycle, a.cycle))[0] for a in alone) / 4.0
+    hi = max(max(a.extra.get("range", (a.cycle, a.cycle))[1], a.cycle) for a in alone)
+    n_grid = min(MAX_GRID, int(math.ceil(math.log(hi / lo) / math.log(grid_ratio))) + 1)
+    T = np.unique(np.concatenate((np.geomspace(lo, hi, n_grid), [a.cycle for a in alone])))
+    C = T.size
+    A = np.array([a.total_cost for a in alone])
+    riders = sorted({f for run in runs for f in run.members})
+    costs: dict[int, np.ndarray] = {}
+    kb: dict[int, np.ndarray] = {}
+    ride_lb = np.full((nf, C), np.inf)
+    for f in riders:
+        c3 = _item_costs(fams[f], T, ks)
+        kbest = np.argmin(c3, axis=2)
+        costs[f] = np.where(np.arange(ks.size)[None, None, :] <= kbest[:, :, None], c3, np.inf)
+        kb[f] = kbest
+        ride_lb[f] = np.min(c3, axis=2).sum(axis=1)  # + join cost per run below
+    # a run at T_c is worth modelling only if its bound beats its members ordering alone: ordering alone a
+    # family's best is its own optimum (cost A_f, fixed), so only riding needs the candidate grid
+    RC = []
+    for r, run in enumerate(runs):
+        mem = list(run.members)
+        lbr = run.fixed_cost / T + sum(np.minimum(A[f], join[(f, r)] / T + ride_lb[f]) for f in mem)
+        for c in np.nonzero(lbr < A[mem].sum() * (1 - 1e-9))[0]:
+            RC.append((r, int(c)))
+    if not RC:
+        sol = fallback("no run can beat its members ordering alone (bound check): every family orders alone")
+        ok = all(a.status == "optimal" for a in alone)
+        return replace(sol, status="optimal" if ok else "fallback")
+    import pyomo.environ as pyo
+
+    m = pyo.ConcreteModel(name="shared_runs")
+    FRC = [(f, r, c) for (r, c) in RC for f in runs[r].members if np.isfinite(ride_lb[f, c])]
+    FC = sorted({(f, c) for (f, _, c) in FRC})
+    X = [(f, c, i, kk) for (f, c) in FC for i in range(fams[f].minor_cost.size)
+         for kk in range(int(kb[f][c, i]) + 1) if np.isfinite(costs[f][c, i, kk])]
+    m.F = pyo.Set(initialize=range(nf))
+    m.RC = pyo.Set(initialize=RC, dimen=2)
+    m.FRC = pyo.Set(initialize=FRC, dimen=3)
+    m.X = pyo.Set(initialize=X, dimen=4)
+    m.own = pyo.Var(m.F, domain=pyo.Binary)
+    m.w = pyo.Var(m.FRC, domain=pyo.Binary)
+    m.z = pyo.Var(m.RC, domain=pyo.Binary)
+    m.x = pyo.Var(m.X, domain=pyo.Binary)
+    x_by_fci: dict = {}
+    for tt in X:
+        x_by_fci.setdefault(tt[:3], []).append(tt)
+    w_by_fc: dict = {}
+    for tt in FRC:
+        w_by_fc.setdefault((tt[0], tt[2]), []).append(tt)
+    w_by_f: dict = {}
+    for tt in FRC:
+        w_by_f.setdefault(tt[0], []).append(tt)
+
+    def load(f, c, attr, tt):
+        return float(fams[f].annual_demand[tt[2]] * getattr(fams[f], attr)[tt[2]] * T[c] * ks[tt[3]])
+
+    def big_m(f, c, attr):
+        return sum(max(load(f, c, attr, tt) for tt in x_by_fci[(f, c, i)])
+                   for i in range(fams[f].minor_cost.size))
+
+    def objective(m):
+        e = sum(float(A[f]) * m.own[f] for f in m.F)
+        e += sum(join[(f, r)] / T[c] * m.w[f, r, c] for (f, r, c) in m.FRC)
+        e += sum(runs[r].fixed_cost / T[c] * m.z[r, c] for (r, c) in m.RC)
+        return e + sum(float(costs[tt[0]][tt[1], tt[2], tt[3]]) * m.x[tt] for tt in m.X)
+
+    m.objective = pyo.Objective(rule=objective, sense=pyo.minimize)
+
+    def one_mode(m, f):
+        return m.own[f] + sum(m.w[tt] for tt in w_by_f.get(f, [])) == 1
+
+    m.one_mode = pyo.Constraint(m.F, rule=one_mode)
+
+    def one_multiple(m, f, c, i):
+        return sum(m.x[tt] for tt in x_by_fci[(f, c, i)]) == sum(m.w[tt] for tt in w_by_fc[(f, c)])
+
+    m.FCI = pyo.Set(initialize=[(f, c, i) for (f, c) in FC for i in range(fams[f].minor_cost.size)], dimen=3)
+    m.one_multiple = pyo.Constraint(m.FCI, rule=one_multiple)
+
+    def ride_with_run(m, f, r, c):
+        return m.w[f, r, c] <= m.z[r, c]
+
+    m.ride_with_run = pyo.Constraint(m.FRC, rule=ride_with_run)
+
+    def one_run_cycle(m, r):
+        return sum(m.z[rc] for rc in RC if rc[0] == r) <= 1
+
+    m.one_run_cycle = pyo.Constraint(sorted({r for r, _ in RC}), rule=one_run_cycle)
+    m.run_capacity = pyo.ConstraintList()
+    for (r, c) in RC:
+        run = runs[r]
+        mem = [f for f in run.members if (f, c) in w_by_fc]
+        for attr, cap in (("volume", run.capacity_volume), ("weight", run.capacity_weight)):
+            if not math.isfinite(cap) or not mem:
+                continue
+            lhs = sum(load(f, c, attr, tt) * m.x[tt] for f in mem for i in range(fams[f].minor_cost.size)
+                      for tt in x_by_fci[(f, c, i)])
+            relax = sum(big_m(f, c, attr) * sum(m.w[tt] for tt in w_by_fc[(f, c)] if tt[1] != r) for f in mem)
+            m.run_capacity.add(lhs <= cap * m.z[r, c] + relax)
+
+    def min_order_value(m, f, c):
+        val = sum(float(fams[f].annual_demand[tt[2]] * fams[f].unit_value[tt[2]] * T[c]) * m.x[tt]
+                  for i in range(fams[f].minor_cost.size) for tt in x_by_fci[(f, c, i)] if tt[3] == 0)
+        return val >= fams[f].min_order_value * sum(m.w[tt] for tt in w_by_fc[(f, c)])
+
+    m.MFC = pyo.Set(initialize=[fc for fc in FC if fams[fc[0]].min_order_value > 0], dimen=2)
+    m.min_order_value = pyo.Constraint(m.MFC, rule=min_order_value)
+    for v in m.component_data_objects(pyo.Var):  # warm start: every family alone
+        v.value = 0.0
+    for f in range(nf):
+        m.own[f].value = 1.0
+    try:
+        tc, obj, bound, has = _solve(m, time_limit, mip_gap, "appsi_highs", warm=True)
+    except Exception as exc:  # noqa: BLE001 - reported fallback
+        return fallback(f"solver failed ({type(exc).__name__}: {exc}); every family solved alone")
+    if not has:
+        return fallback(f"solver ended '{tc}' without a solution; every family solved alone")
+    cyc = np.array([a.cycle for a in alone])
+    mult: list = [a.multiples.copy() for a in alone]
+    joined = np.full(nf, -1)
+    for (f, r, c) in FRC:
+        if (m.w[f, r, c].value or 0) > 0.5:
+            cyc[f], joined[f] = T[c], r
+            k = np.zeros(fams[f].minor_cost.size, dtype=np.int64)
+            for i in range(k.size):
+                for tt in x_by_fci[(f, c, i)]:
+                    if (m.x[tt].value or 0) > 0.5:
+                        k[i] = ks[tt[3]]
+            mult[f] = k
+    if any(np.any(k == 0) for k in mult):
+        return fallback("solver returned an incomplete assignment; every family solved alone")
+    run_cycle = np.full(len(runs), np.nan)
+    feasible = True
+    viol: list[str] = []
+    for r, run in enumerate(runs):
+        mem = [f for f in range(nf) if joined[f] == r]
+        if mem:
+            major = run.fixed_cost + sum(join[(f, r)] for f in mem)
+            Tn = _group_polish(fams, mult, mem, major, float(cyc[mem[0]]), run)
+            cyc[mem] = Tn
+            run_cycle[r] = Tn
+            ok, v = _group_check(fams, mult, Tn, run, mem)
+            feasible &= ok
+            viol += v
+    for f in range(nf):
+        if joined[f] < 0:
+            feasible &= alone[f].feasible
+    fcost = np.array([(alone[f].total_cost if joined[f] < 0 else
+                       join[(f, int(joined[f]))] / cyc[f]
+                       + float(_policy_cost(fams[f], float(cyc[f]), mult[f])[0].sum())) for f in range(nf)])
+    rcost = np.array([runs[r].fixed_cost / run_cycle[r] if np.isfinite(run_cycle[r]) else 0.0
+                      for r in range(len(runs))])
+    total = float(fcost.sum() + rcost.sum())
+    gap = (float(obj) - bound) / abs(float(obj)) if math.isfinite(bound) and obj else math.nan
+    if not feasible:
+        return fallback("solver answer failed the independent check: " + "; ".join(viol))
+    if tc == "optimal" and (math.isnan(gap) or gap <= max(mip_gap, 1e-9) * 1.0001):
+        status = "optimal"
+        msg = (f"proven optimal over the common candidate grid ({len(RC)} run cycles kept of {C}, ratio "
+               f"{grid_ratio}); run cycles re-optimised for the chosen multiples")
+    elif tc in ("optimal", "maxTimeLimit", "maxIterations", "interrupted", "objectiveLimit"):
+        status = "time_limit"
+        msg = f"solver stopped '{tc}' with relative gap {gap:.3g}: best solution found, not proven optimal"
+    else:
+        return fallback(f"solver ended '{tc}'; every family solved alone")
+    if total > standalone * (1 + 1e-9):  # cannot happen with the warm start in the model; kept as a guard
+        return fallback("the shared-run answer cost more than every family alone; every family solved alone")
+    return SharedRunSolution(status, msg, cyc, mult, joined, run_cycle, fcost, rcost, total, standalone,
+                             bound, gap, feasible, time.perf_counter() - t_start)

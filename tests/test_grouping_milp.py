@@ -261,3 +261,67 @@ def test_check_policy_flags_violations():
     assert not ok and len(viol) == 2
     ok, bind, viol = gm.check_policy(fam, 1.0, np.array([1, 1]))  # load 20, value 20, interval 1 = L_0
     assert ok and bind == ("shelf_life",)
+
+
+# ------------------------------------------------------------------------- shared runs vs enumeration
+def _run_families() -> list[gm.Family]:
+    rng = np.random.default_rng(21)
+    fams = []
+    for j in range(3):
+        n = 3
+        D = rng.uniform(100, 800, n)
+        h = rng.uniform(2, 10, n)
+        fams.append(gm.make_family(150.0 + 30 * j, rng.uniform(5, 30, n), h, D,
+                                   volume=rng.uniform(0.01, 0.03, n), demand_var=2 * D, lead_time=0.02,
+                                   backorder_cost=10 * h))
+    return fams
+
+
+def _merged(fams: list[gm.Family], members: list[int], run: gm.SharedRun) -> gm.Family:
+    """The members riding the run as one family: major = run cost + join costs, capacity = the run's."""
+    cat = {name: np.concatenate([getattr(fams[f], name) for f in members])
+           for name in ("minor_cost", "holding_cost", "annual_demand", "demand_var", "lead_time",
+                        "lead_time_sd", "backorder_cost", "unit_value", "volume", "weight", "max_interval")}
+    major = run.fixed_cost + sum((run.join_cost or (0.0,) * len(run.members))[run.members.index(f)]
+                                 for f in members)
+    return gm.make_family(major, cat.pop("minor_cost"), cat.pop("holding_cost"), cat.pop("annual_demand"),
+                          capacity_volume=run.capacity_volume, **cat)
+
+
+def _enumerate(fams: list[gm.Family], run: gm.SharedRun) -> dict[tuple, float]:
+    """Brute force over which members ride the run (each option solved exactly by solve_family)."""
+    alone = [gm.solve_family(f).total_cost for f in fams]
+    out = {(): sum(alone)}
+    for size in range(1, len(run.members) + 1):
+        for sub in itertools.combinations(run.members, size):
+            g = gm.solve_family(_merged(fams, list(sub), run))
+            if g.status == "optimal":
+                out[sub] = g.total_cost + sum(alone[f] for f in range(len(fams)) if f not in sub)
+    return out
+
+
+@pytest.mark.parametrize("fixed_cost, capacity", [(200.0, math.inf), (2000.0, math.inf), (220.0, 9.0)])
+def test_shared_run_matches_enumeration_of_who_joins(fixed_cost, capacity):
+    fams = _run_families()
+    run = gm.SharedRun(fixed_cost=fixed_cost, members=(0, 1, 2), capacity_volume=capacity,
+                       join_cost=(10.0, 10.0, 10.0))
+    res = gm.solve_shared_runs(fams, [run], grid_ratio=1.002)
+    assert res.status == "optimal" and res.feasible
+    options = _enumerate(fams, run)
+    best = min(options, key=options.get)
+    chosen = tuple(f for f in range(3) if res.joined[f] == 0)
+    assert res.total_cost <= options[best] * (1 + 2e-3)
+    assert res.total_cost >= options[best] * (1 - 1e-6)
+    second = sorted(options.values())[1]
+    if second > options[best] * 1.01:  # a clear winner must be found
+        assert chosen == best
+    assert res.total_cost <= res.standalone_cost * (1 + 1e-12)
+    if math.isfinite(capacity) and chosen:
+        load = sum(float(np.sum(fams[f].annual_demand * fams[f].volume * res.multiples[f])) for f in chosen)
+        assert load * res.run_cycle[0] <= capacity * (1 + 1e-9)
+
+
+def test_shared_run_validation():
+    fams = _run_families()
+    with pytest.raises(ValueError, match="members"):
+        gm.solve_shared_runs(fams, [gm.SharedRun(fixed_cost=10.0, members=(0, 5))])
