@@ -373,7 +373,11 @@ def write_outputs(
             old = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
             old.rmdir()
             target.rename(old)
-            temp.rename(target)
+            try:
+                temp.rename(target)
+            except BaseException:
+                old.rename(target)  # put the earlier results back
+                raise
             shutil.rmtree(old, ignore_errors=True)
         else:
             temp.rename(target)
