@@ -468,6 +468,34 @@ def _policy_cost(fam: Family, T: float, k: np.ndarray):
     return det + ss, z, sig
 
 
+def policy_costs(fam: Family, T: float, k: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per-item annual cost, safety factor and order-up-to level of a given cyclic policy.
+
+    Parameters
+    ----------
+    fam : Family
+    T : float
+        Base cycle (years).
+    k : numpy.ndarray of int
+        Multiples.
+
+    Returns
+    -------
+    item_cost, z, order_up_to : numpy.ndarray
+        ``s_i/(k_i T) + h_i D_i k_i T/2 +`` safety and backorder cost (:func:`periodic_review_cost`); the
+        order-up-to level ``D_i (k_i T + L_i) + z_i sigma_i``. The family's own order cost is not included.
+
+    Examples
+    --------
+    >>> c, z, up = policy_costs(make_family(10.0, [1.0], [2.0], [100.0]), 0.1, np.array([1]))
+    >>> round(float(c[0]), 6), round(float(up[0]), 6)
+    (20.0, 10.0)
+    """
+    k = np.asarray(k)
+    c, z, sig = _policy_cost(fam, float(T), k)
+    return c, z, fam.annual_demand * (T * k + fam.lead_time) + z * sig
+
+
 def _loads(fam: Family):
     return fam.annual_demand * fam.volume, fam.annual_demand * fam.weight, fam.annual_demand * fam.unit_value
 

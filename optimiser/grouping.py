@@ -38,9 +38,9 @@ GROUP_COLUMNS = [
     "order_up_to", "safety_factor", "annual_cost", "independent_cost", "status",
 ]
 FAMILY_COLUMNS = [
-    "family", "kind", "site", "supplier", "items", "status", "base_cycle_days", "independent_cost",
-    "grouped_cost", "savings", "savings_pct", "binding", "gap", "candidates", "candidates_kept", "seconds",
-    "tolerance_proven", "message",
+    "family", "kind", "site", "supplier", "items", "status", "shared_run", "base_cycle_days",
+    "independent_cost", "grouped_cost", "savings", "savings_pct", "binding", "gap", "candidates",
+    "candidates_kept", "seconds", "tolerance_proven", "message",
 ]
 
 
@@ -130,6 +130,108 @@ def _families(case: Case, table: pd.DataFrame, deliveries: bool) -> list[dict[st
     return fams
 
 
+RUNS_FILE = "runs.csv"
+RUN_COLUMNS = ("run", "site", "supplier", "run_cost", "max_volume", "max_weight", "join_cost")
+
+
+def read_runs(case: Case) -> pd.DataFrame | None:
+    """Read the optional ``runs.csv`` of a case: shared runs (consolidated pickups) suppliers may join.
+
+    Parameters
+    ----------
+    case : Case
+        The case; ``runs.csv`` is looked for in ``case.path``.
+
+    Returns
+    -------
+    DataFrame or None
+        One row per (run, supplier): ``run, site, supplier, run_cost, max_volume, max_weight, join_cost``
+        (NaN capacities = none, join cost 0 by default); None when the file is absent.
+
+    Raises
+    ------
+    CaseError
+        Naming the row, column and rule: missing columns or cells, numbers that are not finite or are
+        negative (capacities must be above 0), unknown sites or suppliers, a supplier the site does not buy
+        from straight, a run given two sites or two different costs or capacities, a supplier twice in a run.
+
+    Examples
+    --------
+    >>> read_runs(load_case("cases/demo"))  # doctest: +SKIP
+    """
+    import csv
+
+    from optimiser.errors import CaseError
+
+    path = Path(case.path) / RUNS_FILE
+    if not path.is_file():
+        return None
+    try:
+        with path.open(newline="", encoding="utf-8-sig") as handle:
+            records = list(csv.reader(handle))
+    except (UnicodeDecodeError, csv.Error) as exc:
+        raise CaseError(RUNS_FILE, f"not a readable UTF-8 CSV file ({exc})") from None
+    if not records:
+        raise CaseError(RUNS_FILE, "file is empty: the first row must name the columns", row=1)
+    header = [h.strip() for h in records[0]]
+    for col in ("run", "site", "supplier", "run_cost"):
+        if col not in header:
+            raise CaseError(RUNS_FILE, "required column is missing from the header", row=1, column=col)
+    pos = {h: i for i, h in enumerate(header)}
+    root_sites = set(case.sites.loc[case.sites["upstream"] == "", "site"])
+    suppliers = set(case.suppliers["supplier"])
+    rows = []
+    for rownum, rec in enumerate(records[1:], start=2):
+        if not any(cell.strip() for cell in rec):
+            continue
+        cell = {h: (rec[i].strip() if i < len(rec) else "") for h, i in pos.items()}
+        out: dict[str, Any] = {}
+        for col in ("run", "site", "supplier"):
+            if not cell[col]:
+                raise CaseError(RUNS_FILE, "must not be empty", row=rownum, column=col)
+            out[col] = cell[col]
+        for col in ("run_cost", "max_volume", "max_weight", "join_cost"):
+            text = cell.get(col, "")
+            if text == "":
+                out[col] = math.nan
+                continue
+            try:
+                val = float(text)
+            except ValueError:
+                raise CaseError(RUNS_FILE, "must be a number", row=rownum, column=col, value=text) from None
+            if not math.isfinite(val) or val < 0 or (col.startswith("max_") and val == 0):
+                rule = "must be greater than 0" if col.startswith("max_") else "must not be negative"
+                raise CaseError(RUNS_FILE, rule, row=rownum, column=col, value=text)
+            out[col] = val
+        if out["site"] not in root_sites:
+            raise CaseError(RUNS_FILE, "must be a site supplied straight by suppliers (no upstream)",
+                            row=rownum, column="site", value=out["site"])
+        if out["supplier"] not in suppliers:
+            raise CaseError(RUNS_FILE, "unknown supplier (not in suppliers.csv)", row=rownum,
+                            column="supplier", value=out["supplier"])
+        out["row"] = rownum
+        rows.append(out)
+    frame = pd.DataFrame(rows, columns=[*RUN_COLUMNS, "row"])
+    for name, part in frame.groupby("run", sort=False):
+        if part["site"].nunique() > 1:
+            raise CaseError(RUNS_FILE, f"run {name!r} names more than one site", row=int(part["row"].iloc[1]),
+                            column="site")
+        if part["supplier"].duplicated().any():
+            r = int(part.loc[part["supplier"].duplicated(), "row"].iloc[0])
+            raise CaseError(RUNS_FILE, f"supplier listed twice in run {name!r}", row=r, column="supplier")
+        for col in ("run_cost", "max_volume", "max_weight"):
+            vals = part[col].dropna().unique()
+            if len(vals) > 1:
+                raise CaseError(RUNS_FILE, f"run {name!r} has two different values",
+                                row=int(part["row"].iloc[-1]), column=col)
+            if col == "run_cost" and len(vals) == 0:
+                raise CaseError(RUNS_FILE, f"run {name!r} needs a run_cost", row=int(part["row"].iloc[0]),
+                                column=col)
+            frame.loc[part.index, col] = vals[0] if len(vals) else math.nan
+    frame["join_cost"] = frame["join_cost"].fillna(0.0)
+    return frame
+
+
 def group_case(
     case: Case,
     itemsites: pd.DataFrame | None = None,
@@ -139,6 +241,7 @@ def group_case(
     k_max: int = gm.K_MAX,
     grid_ratio: float = gm.GRID_RATIO,
     time_limit: float = gm.TIME_LIMIT,
+    use_runs: bool = True,
     progress: Callable[[str], None] | None = None,
 ) -> GroupResult:
     """Group every family of a case under its shared order cost.
@@ -155,6 +258,8 @@ def group_case(
         Multiples restricted to 1, 2, 4, ...
     k_max, grid_ratio, time_limit
         Passed to :func:`models.grouping_milp.solve_family`.
+    use_runs : bool
+        Consider the shared runs of the case's ``runs.csv`` (when present); see :func:`read_runs`.
     progress : callable, optional
         Called with a line of text per family.
 
@@ -185,6 +290,7 @@ def group_case(
     group_rows: list[pd.DataFrame] = []
     fam_rows: list[dict[str, Any]] = []
     fams = _families(case, table, deliveries)
+    solved: dict[str, tuple[int, gm.Family, np.ndarray]] = {}  # family -> (position, model data, active)
     for f in fams:
         rows = f["rows"].reset_index(drop=True)
         n = len(rows)
@@ -199,6 +305,7 @@ def group_case(
             "items": int(active.sum()), "base_cycle_days": np.nan, "independent_cost": 0.0,
             "grouped_cost": 0.0, "savings": 0.0, "savings_pct": 0.0, "binding": "", "gap": np.nan,
             "candidates": 0, "candidates_kept": 0, "seconds": 0.0, "tolerance_proven": False,
+            "shared_run": "",
         }
         act = rows[active]
         if not active.any():
@@ -259,13 +366,84 @@ def group_case(
                    tolerance_proven=sol.tolerance_proven, message=sol.message)
         if sol.status not in ("optimal",):
             warnings.append(f"family {f['family']}: {sol.status}: {sol.message}")
+        solved[f["family"]] = (len(fam_rows), fam, active)
         fam_rows.append(rec)
         group_rows.append(out)
+    runs = read_runs(case) if use_runs else None
+    if runs is not None and len(runs):
+        _apply_runs(runs, solved, fam_rows, group_rows, dpy, k_max, time_limit, warnings, say)
     groups = pd.concat(group_rows, ignore_index=True) if group_rows else pd.DataFrame(columns=GROUP_COLUMNS)
     families = pd.DataFrame(fam_rows, columns=FAMILY_COLUMNS)
     options = {"deliveries": deliveries, "powers_of_two": powers_of_two, "k_max": k_max,
-               "grid_ratio": grid_ratio, "time_limit_seconds": time_limit}
+               "grid_ratio": grid_ratio, "time_limit_seconds": time_limit,
+               "shared_runs": sorted(runs["run"].unique().tolist()) if runs is not None else []}
     return GroupResult(groups[GROUP_COLUMNS], families, warnings, settings, options)
+
+
+def _apply_runs(runs: pd.DataFrame, solved: dict, fam_rows: list, group_rows: list, dpy: float, k_max: int,
+                time_limit: float, warnings: list[str], say: Callable[[str], None]) -> None:
+    """Solve the shared runs of each site and rewrite the rows of the families that ride one.
+
+    A riding family's grouped cost = its join cost per order + its items' costs + an equal share of the
+    run's cost among the families riding it.
+    """
+    for site, site_runs in runs.groupby("site", sort=True):
+        names = [f"{site}/{s}" for s in site_runs["supplier"].unique()]
+        missing = [n for n in names if n not in solved]
+        for n in missing:
+            warnings.append(f"runs.csv: {n} buys nothing (no demand) and cannot ride a run")
+        names = [n for n in names if n in solved]
+        if not names:
+            continue
+        local = {n: j for j, n in enumerate(names)}
+        fam_objs = [solved[n][1] for n in names]
+        shared, run_names = [], []
+        member = site_runs["supplier"].map(lambda s, site=site, local=local: f"{site}/{s}" in local)
+        for rn in site_runs["run"].unique():
+            part = site_runs[(site_runs["run"] == rn) & member]
+            if part.empty:
+                continue
+            run_names.append(rn)
+            first = part.iloc[0]
+            shared.append(gm.SharedRun(
+                fixed_cost=float(first["run_cost"]),
+                members=tuple(local[f"{site}/{s}"] for s in part["supplier"]),
+                capacity_volume=float(first["max_volume"]) if np.isfinite(first["max_volume"]) else math.inf,
+                capacity_weight=float(first["max_weight"]) if np.isfinite(first["max_weight"]) else math.inf,
+                join_cost=tuple(float(x) for x in part["join_cost"]),
+            ))
+        say(f"shared runs at {site}: {len(shared)} run(s), {len(names)} supplier(s)")
+        res = gm.solve_shared_runs(fam_objs, shared, k_max=k_max, time_limit=time_limit)
+        if res.status != "optimal":
+            warnings.append(f"shared runs at {site}: {res.status}: {res.message}")
+        riders = {}
+        for j, r in enumerate(res.joined):
+            if r >= 0:
+                riders.setdefault(int(r), []).append(j)
+        for r, members in riders.items():
+            run_name = run_names[r]
+            share = res.run_cost[r] / len(members)
+            for j in members:
+                pos, fam, active = solved[names[j]]
+                T, k = float(res.cycle[j]), res.multiples[j]
+                item_cost, z, up = gm.policy_costs(fam, T, k)
+                major = res.family_cost[j] - float(item_cost.sum()) + share
+                out = group_rows[pos]
+                out.loc[active, "base_cycle_days"] = T * dpy
+                out.loc[active, "cycle_multiple"] = k
+                out.loc[active, "order_interval_days"] = T * dpy * k
+                out.loc[active, "order_up_to"] = up
+                out.loc[active, "safety_factor"] = z
+                weight = (1.0 / k) / np.sum(1.0 / k)
+                out.loc[active, "annual_cost"] = item_cost + major * weight
+                out.loc[active, "status"] = res.status
+                rec = fam_rows[pos]
+                grouped = float(item_cost.sum()) + major
+                rec.update(status=res.status, shared_run=run_name, base_cycle_days=T * dpy,
+                           grouped_cost=grouped, savings=rec["independent_cost"] - grouped,
+                           savings_pct=(rec["independent_cost"] - grouped) / rec["independent_cost"] * 100.0
+                           if rec["independent_cost"] > 0 else 0.0,
+                           binding="", gap=res.gap, message=f"rides shared run {run_name}: {res.message}")
 
 
 def write_groups(

@@ -170,3 +170,42 @@ def test_deliveries_option_adds_store_families(case_writer):
     kinds = dict(zip(res.families["family"], res.families["kind"], strict=True))
     assert kinds.get("s1<-wh") == "delivery" and kinds.get("s2<-wh") == "delivery"
     assert (res.families["status"].isin(["optimal", "no demand"])).all()
+
+
+def test_shared_run_from_runs_csv(case_writer):
+    files = dict(ONE_SITE)
+    files["runs.csv"] = """\
+        run,site,supplier,run_cost,max_volume,max_weight,join_cost
+        harbour-van,shop,alpha,60,,,20
+        harbour-van,shop,beta,,,,15
+        """
+    case = load_case(case_writer(files))
+    with_runs = group_case(case)
+    without = group_case(case, use_runs=False)
+    fam = with_runs.families.set_index("family")
+    assert set(fam["shared_run"]) <= {"harbour-van", ""}
+    riders = fam[fam["shared_run"] == "harbour-van"]
+    # riding is chosen only when it pays: the total can only fall
+    total_with = float(with_runs.families["grouped_cost"].sum())
+    total_without = float(without.families["grouped_cost"].sum())
+    assert total_with <= total_without * (1 + 1e-9)
+    if len(riders):
+        assert riders["base_cycle_days"].nunique() == 1  # riders share the run's cycle
+        assert total_with < total_without
+    # items' annual costs still add up to each family's grouped cost
+    per = with_runs.groups.groupby("family")["annual_cost"].sum()
+    np.testing.assert_allclose(per[fam.index], fam["grouped_cost"], rtol=1e-9)
+
+
+def test_runs_csv_errors_name_row_and_column(case_writer, tmp_path, capsys):
+    files = dict(ONE_SITE)
+    files["runs.csv"] = """\
+        run,site,supplier,run_cost
+        van,shop,alpha,60
+        van,shop,gamma,60
+        """
+    folder = case_writer(files)
+    assert main(["group", str(folder), "--out", str(tmp_path / "o"), "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert "runs.csv" in err and "row 3" in err and "supplier" in err
+    assert not (tmp_path / "o").exists()
