@@ -132,7 +132,7 @@ def _count_params(mean, sd, distribution):
     mu = np.asarray(mean, dtype=float)
     var = np.asarray(sd, dtype=float) ** 2
     is_nb = (np.asarray(distribution) == NEGBIN) & (var > mu * (1.0 + NEGBIN_MIN_EXCESS)) & (mu > 0)
-    safe_var = np.where(is_nb, var, 2.0 * mu + 1.0)
+    safe_var = np.where(is_nb, var, 3.0)
     safe_mu = np.where(is_nb, mu, 1.0)
     r = np.where(is_nb, safe_mu * safe_mu / (safe_var - safe_mu), np.inf)
     q = np.where(is_nb, 1.0 - safe_mu / safe_var, 0.0)

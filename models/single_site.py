@@ -74,7 +74,8 @@ _NOTE_TEXT = {
     NOTE_FIXED_Q: "order quantity fixed by the case",
     NOTE_PACK_ROUNDED: "order quantity rounded to a multiple of the pack size",
     NOTE_POISSON_FALLBACK: "negative binomial asked for but variance <= mean: Poisson used",
-    NOTE_SEARCH_LIMIT: "order quantity at the edge of its search range (cost still falling)",
+    NOTE_SEARCH_LIMIT: "order quantity from a bounded search (cost may fall further, or the exact scan was "
+                       "cut short)",
     NOTE_ONE_FOR_ONE: "no order cost: one unit (or one pack) per order",
 }
 
@@ -91,11 +92,13 @@ NEWTON_MAX_ITER = 100
 #: Root solver for the reorder point under a shortage-fraction condition.
 ROOT_TOL = 1e-13
 ROOT_MAX_ITER = 200
-#: Count items, service target with a jointly optimised Q: integer search on [1, Q_HIGH_FACTOR·EOQ +
-#: Q_HIGH_SIGMAS·σ]; a deterministic fill-rate item with target <= 1/2 (cost falls without bound in Q under
-#: the per-unit basis) stops at Q_HIGH_FACTOR·EOQ.
+#: Service target with a jointly optimised Q: search range Q <= Q_HIGH_FACTOR·EOQ + Q_HIGH_SIGMAS·σ
+#: (reached only where the cost keeps falling in Q, e.g. a fill-rate target <= 1/2 under the per-unit basis,
+#: whose holding term h(R − μ) then falls without bound; such items are flagged NOTE_SEARCH_LIMIT).
 Q_HIGH_FACTOR = 8.0
 Q_HIGH_SIGMAS = 50.0
+#: Count items, service target with a jointly optimised Q: at most this many Q values are scanned exactly.
+COUNT_SCAN_MAX = 300
 #: Below this Q/σ the window averages use the midpoint rule (second-order accurate).
 SMALL_WINDOW = 1e-4
 #: Smallest tail probability used to bound integer searches (Cantelli bound).
@@ -331,8 +334,12 @@ def _best_R_normal(Q, mu, sd, D, h, b, mode, basis, t):
     return R, it, conv, flag
 
 
-def _best_R_counts(Q, c: _Counts, D, h, b, mode, basis, t):
-    """Integer reorder point for an integer Q (counts). Returns (R, steps, flag)."""
+def _best_R_counts(Q, c: _Counts, D, h, b, mode, basis, t, csl_R=None):
+    """Integer reorder point for an integer Q (counts). Returns (R, steps, flag).
+
+    ``csl_R`` (fill rate only, optional): the cycle-service reorder point for the same target, which bounds
+    the answer from above (computed here when not given).
+    """
     n = Q.shape[0]
     flag = np.zeros(n, dtype=bool)
     if mode == "cycle_service":
@@ -355,7 +362,10 @@ def _best_R_counts(Q, c: _Counts, D, h, b, mode, basis, t):
             ystar - Q - 1, ystar - 1)
         steps = steps + s1
     else:  # fill rate: smallest R with short(R, Q) <= 1 − t
-        sr, s1, _ = _best_R_counts(Q, c, D, h, b, "cycle_service", basis, t)
+        if csl_R is None:
+            sr, s1, _ = _best_R_counts(Q, c, D, h, b, "cycle_service", basis, t)
+        else:
+            sr, s1 = csl_R, 0
         R, steps = _int_search(lambda i, x: c.take(i).short(x, Q[i]) <= 1.0 - t[i], sr - Q - 1, sr)
         steps = steps + s1
     return R, steps, flag
@@ -714,8 +724,9 @@ def _service_q_normal(mu, sd, D, A, h, t, mode, basis):
     per σ is k/q + h(q/2 + z) (per-unit basis) or k/q + h(z + q/2 + [G2(z) − G2(z + q)]/q) (per-unit-year:
     exact on hand), with derivative
     −k/q² + h/2 + h·dz/dq  [+ h(−s·dz/dq + (G(z + q) − avg G)/q)].
-    The derivative is <= 0 at the EOQ; the bracket is widened by doubling until it turns positive, then a
-    bracketing secant (Illinois) finds its root. Returns (Q, iterations, converged, at_search_limit).
+    The derivative is <= 0 at the EOQ; the bracket is widened by doubling until it turns positive (at most
+    to Q_HIGH_FACTOR·EOQ + Q_HIGH_SIGMAS·σ, else the item is flagged), then a bracketing secant (Illinois)
+    finds its root. Returns (Q, iterations, converged, at_search_limit).
     """
     n = mu.shape[0]
     k = A * D / (sd * sd)
@@ -747,19 +758,19 @@ def _service_q_normal(mu, sd, D, A, h, t, mode, basis):
         return d
 
     allidx = np.arange(n)
+    q_max = Q_HIGH_FACTOR * q_eoq + Q_HIGH_SIGMAS          # search range in units of σ
     a = q_eoq.copy()
     fa = np.minimum(deriv(allidx, a), 0.0)
-    b = np.maximum(2.0 * a, a + 1.0)
+    b = np.minimum(np.maximum(2.0 * a, a + 1.0), q_max)
     fb = deriv(allidx, b)
     edge = np.zeros(n, dtype=bool)
-    grow = np.flatnonzero(fb <= 0)
-    for _ in range(60):                                   # widen: b ← 2b until the derivative is > 0
-        if not grow.size:
-            break
+    grow = np.flatnonzero((fb <= 0) & (b < q_max))
+    while grow.size:                                      # widen: b ← 2b until the derivative is > 0
         a[grow], fa[grow] = b[grow], np.minimum(fb[grow], 0.0)
-        b[grow] = 2.0 * b[grow]
+        b[grow] = np.minimum(2.0 * b[grow], q_max[grow])
         fb[grow] = deriv(grow, b[grow])
-        grow = grow[fb[grow] <= 0]
+        grow = grow[(fb[grow] <= 0) & (b[grow] < q_max[grow])]
+    grow = np.flatnonzero(fb <= 0)                        # still falling at the end of the range
     edge[grow] = True
     conv = np.zeros(n, dtype=bool)
     conv[grow] = True
@@ -822,7 +833,8 @@ def _count_service_q(fun, D, mu, A, h, t, mode, basis, q1, sd):
 
     The cost is not unimodal in Q (R jumps by whole units), so a ternary search only supplies a first
     incumbent c*; then every Q in [⌈AD/c*⌉, Q_ub] is evaluated, where Q_ub is the last Q whose lower bound
-    LB(Q) <= c*:
+    LB(Q) <= c* (at most COUNT_SCAN_MAX values around the incumbent; items where that cap or the search
+    range binds are flagged ``NOTE_SEARCH_LIMIT``):
 
     * cycle service: LB = AD/Q + h(R_t + (Q + 1)/2 − μ) (R_t does not depend on Q; E[B] >= 0);
     * fill rate: X >= 0 gives R >= −(1 − t)Q; per-unit basis LB = AD/Q + h((t − ½)Q + ½ − μ) (no bound
@@ -836,7 +848,7 @@ def _count_service_q(fun, D, mu, A, h, t, mode, basis, q1, sd):
     Q, best = _int_golden(fun, np.ones(n), hi_cap)
     AD = A * D
     if mode == "cycle_service":
-        Rt, _, _ = _best_R_counts(np.ones(n), fun.counts, D, h, np.zeros(n), "cycle_service", basis, t)
+        Rt = fun.csl_R
 
         def lb(i, q):
             return AD[i] / q + h[i] * (Rt[i] + 0.5 * (q + 1.0) - mu[i])
@@ -866,6 +878,12 @@ def _count_service_q(fun, D, mu, A, h, t, mode, basis, q1, sd):
         up[act] = np.where(ok, up[act], mid)
     q_ub = np.where(edge, up, lo)
     q_lb = np.maximum(np.ceil(AD / best), 1.0)
+    # cap the scan at COUNT_SCAN_MAX values of Q centred on the incumbent
+    wide = q_ub - q_lb + 1 > COUNT_SCAN_MAX
+    half = COUNT_SCAN_MAX // 2
+    q_lb = np.where(wide, np.maximum(q_lb, Q - half), q_lb)
+    q_ub = np.where(wide, np.minimum(q_ub, q_lb + COUNT_SCAN_MAX - 1), q_ub)
+    edge = edge | wide
     steps = np.zeros(n, dtype=np.int64)
     j = 0.0
     active = np.flatnonzero(q_lb <= q_ub)
@@ -1316,11 +1334,18 @@ def _joint(is_disc, D, mu, sd, A, h, b, dist, t, mode, basis, rule):
         better = A * D / (q1 + 1) + 0.5 * h * (q1 + 1) < A * D / q1 + 0.5 * h * q1
         Q = np.where(better, q1 + 1, q1)
     else:
+        r_csl, st0, _ = _best_R_counts(np.ones(n), c, D, h, b, "cycle_service", basis, t)
+        it = it + st0
+
         def fun(idx, q):
-            Rq, _, _ = _best_R_counts(q, c.take(idx), D[idx], h[idx], b[idx], mode, basis, t[idx])
+            if mode == "cycle_service":
+                Rq = r_csl[idx]
+            else:
+                Rq, _, _ = _best_R_counts(q, c.take(idx), D[idx], h[idx], b[idx], mode, basis, t[idx],
+                                          csl_R=r_csl[idx])
             return _objective(Rq, q, mu[idx], sd[idx], D[idx], A[idx], h[idx], b[idx], True, mode, basis,
                               c.take(idx))
-        fun.counts = c
+        fun.csl_R = r_csl
         Q, edge, st = _count_service_q(fun, D, mu, A, h, t, mode, basis, q1, sd)
         it = it + st
     R, st, _ = _best_R_counts(Q, c, D, h, b, mode, basis, t)
