@@ -215,3 +215,16 @@ def test_module_entry_point_reports_bad_case(tmp_path: Path) -> None:
     )
     assert done.returncode == 2
     assert "case.toml: file is missing" in done.stderr
+
+
+def test_notes_are_written_in_words(tmp_path: Path) -> None:
+    from models.single_site import NOTE_ZERO_DEMAND, describe_notes
+
+    out = tmp_path / "out"
+    assert main(["plan", str(QUICK), "--out", str(out), "-q", "--no-plots"]) == 0
+    rows = pd.read_csv(out / "policies.csv", keep_default_na=False).set_index("item")
+    words = "; ".join(describe_notes(NOTE_ZERO_DEMAND))
+    assert words and words in rows.loc["wheel-truing-spoke-set", "note"]  # zero demand in demand.csv
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    assert any(words in note for note in summary["notes"])
+    assert words in (out / "sites" / "workshop" / "summary.md").read_text(encoding="utf-8")
