@@ -15,6 +15,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from casefiles import BASE_FILES, write_case
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -30,7 +31,6 @@ from optimiser.case import (
 )
 from optimiser.cli import main
 from optimiser.errors import CaseError
-from tests.conftest import BASE_FILES, write_case
 
 SITES = BASE_FILES["sites.csv"]
 SUPPLIERS = BASE_FILES["suppliers.csv"]

@@ -11,11 +11,11 @@ import math
 
 import numpy as np
 import pytest
+from casefiles import BASE_FILES
 
 from models import demand as md
 from optimiser.case import load_case
 from optimiser.itemsites import ITEMSITE_COLUMNS, build_itemsites, through_demand
-from tests.conftest import BASE_FILES
 
 
 def _table(case_writer, files=None):

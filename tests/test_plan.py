@@ -14,12 +14,12 @@ import math
 import numpy as np
 import pandas as pd
 import pytest
+from casefiles import BASE_FILES
 from scipy import stats
 
 import optimiser.plan as plan_module
 from optimiser.case import load_case
 from optimiser.plan import NETWORK_DELAY_WARNING, POLICY_COLUMNS, evaluate_case, plan_case
-from tests.conftest import BASE_FILES
 
 SHOP_SITES = "site,upstream\nshop,\n"
 SHOP_DEMAND = "site,item,daily_mean,daily_sd\nshop,a,12,4\nshop,b,3,2\nshop,c,0.2,0.5\n"
