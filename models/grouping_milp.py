@@ -932,8 +932,9 @@ def solve_family(
         k = np.asarray(k, dtype=np.int64)
         c, z, sig = _policy_cost(fam, T, k)
         feas, bind, viol = check_policy(fam, T, k)
-        if viol and status in ("optimal", "time_limit"):
-            status, message = "fallback", "solver answer failed the independent check: " + "; ".join(viol)
+        if viol and status in ("optimal", "time_limit"):  # never pass on an answer that breaks a limit
+            return rand_fallback("fallback", "solver answer failed the independent check ("
+                                 + "; ".join(viol) + "); RAND heuristic used, not proven optimal")
         oupt = fam.annual_demand * (T * k + fam.lead_time) + z * sig
         return FamilySolution(
             status=status, message=message, cycle=float(T), multiples=k, order_up_to=oupt, safety_factor=z,

@@ -325,3 +325,29 @@ def test_shared_run_validation():
     fams = _run_families()
     with pytest.raises(ValueError, match="members"):
         gm.solve_shared_runs(fams, [gm.SharedRun(fixed_cost=10.0, members=(0, 5))])
+
+
+def test_answer_failing_the_check_is_not_passed_on(monkeypatch):
+    # an answer the independent check rejects (simulated once the solver has answered) is replaced by the
+    # RAND fallback, and said so
+    real_check, real_solve = gm.check_policy, gm._solve
+    solved: list[bool] = []
+
+    def solve(*args, **kw):
+        out = real_solve(*args, **kw)
+        solved.append(True)
+        return out
+
+    def strict(fam, T, k):
+        ok, bind, viol = real_check(fam, T, k)
+        if solved and len(solved) == 1:
+            solved.append(True)  # reject the solver's answer only
+            return False, bind, [*viol, "capacity_volume: rejected by the test"]
+        return ok, bind, viol
+
+    monkeypatch.setattr(gm, "_solve", solve)
+    monkeypatch.setattr(gm, "check_policy", strict)
+    r = gm.solve_family(_capacity_family(0.45, False), k_max=8)
+    assert r.status == "fallback"
+    assert "independent check" in r.message and "not proven optimal" in r.message
+    assert r.feasible  # the fallback itself meets the limits
