@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import importlib
 import importlib.util
+import inspect
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
@@ -75,6 +76,9 @@ class PlanResult:
         the item-sites today's policies cover.
     method : str
         ``"single-site"`` or ``"network"``.
+    network_summary : DataFrame or None
+        From the network method, per item and root site: how safety stock splits between the warehouse and
+        the stores, and the network cost against planning each site alone (``optimiser.network``).
     """
 
     command: str
@@ -87,6 +91,7 @@ class PlanResult:
     current: pd.DataFrame | None = None
     comparison: pd.DataFrame | None = None
     method: str = "single-site"
+    network_summary: pd.DataFrame | None = None
 
 
 # --------------------------------------------------------------------------------------------- helpers
@@ -443,10 +448,15 @@ def plan_case(case: Case, *, progress: Callable[[str], None] | None = None) -> P
     itemsites = build_itemsites(case)
     say(f"planning {len(itemsites)} item-sites at {itemsites['site'].nunique()} site(s)")
     method = "single-site"
+    network_summary = None
     if _has_upstream(itemsites):
         plan_network = _network_function("plan_network")
         if plan_network is not None:
-            policies = plan_network(itemsites, case.settings)[POLICY_COLUMNS].reset_index(drop=True)
+            if "return_summary" in inspect.signature(plan_network).parameters:
+                policies, network_summary = plan_network(itemsites, case.settings, return_summary=True)
+            else:
+                policies = plan_network(itemsites, case.settings)
+            policies = policies[POLICY_COLUMNS].reset_index(drop=True)
             method = "network"
         else:
             warnings.append(NETWORK_DELAY_WARNING)
@@ -473,6 +483,7 @@ def plan_case(case: Case, *, progress: Callable[[str], None] | None = None) -> P
         current=current,
         comparison=comparison,
         method=method,
+        network_summary=network_summary,
     )
 
 

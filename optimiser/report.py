@@ -7,6 +7,7 @@ Layout of the output folder::
     sites/<site>/summary.md   a short readable summary of the site
     summary.json              totals per site and for the network, settings, tool version, warnings
     comparison.csv            today's against the recommended policies (only when the case gives today's)
+    network_summary.csv       network method: per item, safety stock split and saving against planning alone
     cost_by_site.png          annual cost per site by component
     safety_stock_vs_service.png  safety stock in days of demand against fill rate per item-site
 
@@ -145,12 +146,39 @@ def _summary_json(result: PlanResult, case_name: str, case_path: str) -> dict[st
         "notes": notes,
         "warnings": list(result.warnings),
     }
+    if result.network_summary is not None and len(result.network_summary):
+        out["network_plan"] = _network_plan_totals(result)
     if result.comparison is not None:
         out["today"] = {
             row["site"]: {k: v for k, v in row.items() if k != "site"}
             for row in result.comparison.to_dict(orient="records")
         }
     return _clean(out)
+
+
+def _network_plan_totals(result: PlanResult) -> dict[str, dict[str, Any]]:
+    """Per root site: network cost against planning each site alone, and the split of safety stock value."""
+    summary = result.network_summary
+    unit = result.itemsites.drop_duplicates("item").set_index("item")["unit_cost"]
+    value = summary["item"].map(unit).to_numpy(dtype=float)
+    out: dict[str, dict[str, Any]] = {}
+    for root, idx in summary.groupby("root", sort=False).groups.items():
+        part = summary.loc[idx]
+        v = value[summary.index.get_indexer(idx)]
+        wh = float((part["warehouse_safety_stock"] * v).sum())
+        st = float((part["stores_safety_stock"] * v).sum())
+        network, alone = float(part["network_cost"].sum()), float(part["single_site_network_cost"].sum())
+        out[str(root)] = {
+            "items": len(part),
+            "network_cost": network,
+            "single_site_network_cost": alone,
+            "savings": alone - network,
+            "savings_pct": 100.0 * (alone - network) / alone if alone > 0 else float("nan"),
+            "warehouse_safety_stock_value": wh,
+            "stores_safety_stock_value": st,
+            "warehouse_share_of_safety_stock_value": wh / (wh + st) if wh + st != 0 else float("nan"),
+        }
+    return out
 
 
 def _note_counts(policies: pd.DataFrame) -> dict[str, int]:
@@ -215,6 +243,20 @@ def _site_summary(result: PlanResult, site: str, totals: dict[str, Any], frame: 
             f"{_money(row['recommended_total_cost'], cur)} (saving {_money(row['saving'], cur)} a year); "
             f"fill rate today {_pct(row['current_fill_rate'])}, "
             f"recommended {_pct(row['recommended_fill_rate'])}.",
+            "",
+        ]
+    if result.network_summary is not None and site in set(result.network_summary["root"].astype(str)):
+        net = _network_plan_totals(result)[site]
+        lines += [
+            "## Planning the network together",
+            "",
+            f"For the {net['items']} items this site supplies to the sites below it, the network plan "
+            f"costs {_money(net['network_cost'], cur)} a year against "
+            f"{_money(net['single_site_network_cost'], cur)} when each site is planned alone (saving "
+            f"{_money(net['savings'], cur)}). Safety stock value: "
+            f"{_money(net['warehouse_safety_stock_value'], cur)} here, "
+            f"{_money(net['stores_safety_stock_value'], cur)} at the sites below (negative where reorder "
+            "points sit below the expected lead-time demand). Per item in network_summary.csv.",
             "",
         ]
     top = frame.sort_values("total_cost", ascending=False).head(TOP_ITEMS)
@@ -358,6 +400,9 @@ def write_outputs(
                 _site_summary(result, str(site), totals[site], part), encoding="utf-8"
             )
             written += [f"sites/{site}/policies.csv", f"sites/{site}/summary.md"]
+        if result.network_summary is not None:
+            _text_frame(result.network_summary).to_csv(temp / "network_summary.csv", index=False)
+            written.append("network_summary.csv")
         if result.comparison is not None:
             _text_frame(result.comparison).to_csv(temp / "comparison.csv", index=False)
             written.append("comparison.csv")

@@ -228,3 +228,18 @@ def test_notes_are_written_in_words(tmp_path: Path) -> None:
     summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
     assert any(words in note for note in summary["notes"])
     assert words in (out / "sites" / "workshop" / "summary.md").read_text(encoding="utf-8")
+
+
+def test_demo_network_plan_summary(demo_out: Path) -> None:
+    summary = json.loads((demo_out / "summary.json").read_text(encoding="utf-8"))
+    if summary["method"] != "network":
+        pytest.skip("the network method is not available")
+    rows = pd.read_csv(demo_out / "network_summary.csv")
+    depot = summary["network_plan"]["depot"]
+    assert depot["items"] == len(rows)
+    assert depot["network_cost"] == pytest.approx(rows["network_cost"].sum(), rel=1e-4)
+    alone = depot["single_site_network_cost"]
+    assert depot["savings"] == pytest.approx(alone - depot["network_cost"], rel=1e-9)
+    # the network cost is the cost of the written policies of every site (the stores' and the depot's)
+    assert depot["network_cost"] == pytest.approx(summary["network"]["total_cost"], rel=1e-4)
+    assert "Planning the network together" in (demo_out / "sites" / "depot" / "summary.md").read_text()
