@@ -793,6 +793,12 @@ def load_case(path: str | Path) -> Case:
         _check_stocking(stocking, sites, demand, warnings)
 
     pairs = stocked_pairs(sites, demand, stocking)
+    idle = [site for site in sites["site"] if site not in set(pairs["site"])]
+    if idle:
+        warnings.append(
+            f"site(s) {', '.join(idle)} stock no item (no demand there or below, and no "
+            "stocking.csv row): nothing is planned for them"
+        )
     _check_service(settings, items, stocking, pairs, warnings)
 
     policies = None

@@ -531,3 +531,9 @@ def test_column_parser_agrees_with_cell_parser(cells: list[str], col) -> None:
             assert math.isnan(got)
         else:
             assert got == expected, (raw, col.name)
+
+
+def test_site_without_items_is_warned(case_writer) -> None:
+    sites = BASE_FILES["sites.csv"] + "        s3,wh,1,,\n"
+    warnings = load_case(case_writer({"sites.csv": sites})).warnings
+    assert any("s3 stock no item" in w for w in warnings)
