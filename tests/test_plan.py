@@ -209,3 +209,22 @@ def test_history_case_plans(case_writer) -> None:
     result = plan_case(case)
     assert set(result.policies["item"]) == {"a", "b"}
     assert (result.policies["total_cost"] > 0).all()
+
+
+def test_extreme_values_give_finite_policies(case_writer) -> None:
+    """Huge and tiny demand and costs, zero variability, on purpose: every figure finite, with notes."""
+    files = {
+        "case.toml": 'name = "extremes"\ndistribution = "auto"\n',
+        "sites.csv": SHOP_SITES,
+        "suppliers.csv": "supplier,lead_days,order_cost\nsup,5,1e6\n",
+        "items.csv": "item,supplier,unit_cost,backorder_cost\nx,sup,1e-3,1e9\ny,sup,1e6,1\nz,sup,1,1\n",
+        "demand.csv": "site,item,daily_mean,daily_sd\nshop,x,1e7,0\nshop,y,1e-6,1e-6\nshop,z,5,0\n",
+    }
+    result = plan_case(load_case(case_writer(files)))
+    numbers = result.policies.drop(columns=["site", "item"]).to_numpy(dtype=float)
+    assert np.isfinite(numbers).all()
+    pol = result.policies.set_index("item")
+    # no demand variability: deterministic lot size, the EOQ sqrt(2AD/h) (Harris 1913, common practice)
+    d, a, h = 1e7 * 365, 1e6, 0.25 * 1e-3
+    assert pol.loc["x", "order_quantity"] == pytest.approx(math.sqrt(2 * a * d / h), rel=1e-6)
+    assert (pol["note"] != 0).all()
