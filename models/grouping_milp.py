@@ -780,12 +780,39 @@ def _lagrangian(fam: Family, T: np.ndarray, cost: np.ndarray, kvals: np.ndarray,
 # --------------------------------------------------------------------------- the model
 def build_model(S: float, T: np.ndarray, index: list, cost: dict, load_v: dict, load_w: dict, val1: dict,
                 fam: Family):
-    """The pyomo model over kept candidates.
+    """The pyomo model of one family over the kept candidate cycles.
 
-    Sets: ``C`` candidates, ``X`` (c, i, k) triples. Parameters: ``T[c]``, ``cost[c,i,k]``. Variables:
-    ``y[c]`` (the base cycle), ``x[c,i,k]`` (item i ordered every k cycles under c). Objective: major cost
-    ``S/T[c] y[c]`` plus item costs. Constraints: one cycle; one multiple per item under the chosen cycle;
-    capacity by volume and by weight; minimum order value (items with k = 1).
+    Parameters
+    ----------
+    S : float
+        Major cost per family order.
+    T : numpy.ndarray
+        Candidate cycles (years), indexed ``c = 0 .. len(T) - 1``.
+    index : list of tuple
+        The allowed ``(c, i, k)`` triples (shelf life and dominance already applied).
+    cost, load_v, load_w, val1 : dict
+        Per triple: annual item cost; volume and weight of the item in the largest order; value of the item
+        in the smallest order (used where ``k = 1``).
+    fam : Family
+        For the limits (capacities, minimum order value).
+
+    Returns
+    -------
+    pyomo.environ.ConcreteModel
+
+    Notes
+    -----
+    Sets ``C``, ``X``, ``CI``; parameters ``T[c]``, ``cost[c,i,k]``; binary variables ``y[c]`` (the base
+    cycle) and ``x[c,i,k]`` (item i every k cycles under c). Objective: ``sum S/T[c] y[c] + sum cost x``.
+    Constraints, one rule per family: ``one_cycle``, ``one_multiple``, ``capacity_volume``,
+    ``capacity_weight``, ``min_order_value``.
+
+    Examples
+    --------
+    >>> f = make_family(10.0, [1.0], [1.0], [10.0])
+    >>> m = build_model(10.0, np.array([1.0]), [(0, 0, 1)], {(0, 0, 1): 6.0}, {}, {}, {}, f)
+    >>> len(m.x)
+    1
     """
     import pyomo.environ as pyo
 
@@ -932,6 +959,8 @@ def solve_family(
         k = np.asarray(k, dtype=np.int64)
         c, z, sig = _policy_cost(fam, T, k)
         feas, bind, viol = check_policy(fam, T, k)
+        if np.any(k >= ks.max()):  # an item sits at the largest multiple allowed: the limit may bind
+            bind = (*bind, "max_multiple")
         if viol and status in ("optimal", "time_limit"):  # never pass on an answer that breaks a limit
             return rand_fallback("fallback", "solver answer failed the independent check ("
                                  + "; ".join(viol) + "); RAND heuristic used, not proven optimal")

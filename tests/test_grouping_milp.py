@@ -351,3 +351,15 @@ def test_answer_failing_the_check_is_not_passed_on(monkeypatch):
     assert r.status == "fallback"
     assert "independent check" in r.message and "not proven optimal" in r.message
     assert r.feasible  # the fallback itself meets the limits
+
+
+def test_huge_and_tiny_values_and_the_multiple_limit():
+    # demand of a billion units a year next to a slow item; the cost must still match the exact optimum
+    S, s, h, D = 5e3, np.array([1.0, 4e3]), np.array([1e-3, 50.0]), np.array([1e9, 0.5])
+    ex = joint.exact_cyclic(S, s, h * D)
+    r = gm.solve_family(gm.make_family(S, s, h, D), k_max=max(8, int(ex.multiples.max())))
+    assert r.status == "optimal" and np.isfinite(r.total_cost)
+    assert r.total_cost == pytest.approx(ex.cost, rel=1e-9)
+    # with the multiples capped below what the slow item wants, the limit is named as binding
+    capped = gm.solve_family(gm.make_family(S, s, h, D), k_max=2)
+    assert "max_multiple" in capped.binding and capped.total_cost >= ex.cost
