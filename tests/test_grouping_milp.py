@@ -363,3 +363,36 @@ def test_huge_and_tiny_values_and_the_multiple_limit():
     # with the multiples capped below what the slow item wants, the limit is named as binding
     capped = gm.solve_family(gm.make_family(S, s, h, D), k_max=2)
     assert "max_multiple" in capped.binding and capped.total_cost >= ex.cost
+
+
+@pytest.mark.parametrize("seed", range(16))
+def test_random_mixed_limits_against_brute_force(seed):
+    # random families with random combinations of capacity, minimum value, shelf life and safety stock:
+    # the model is never worse than exhaustive search (k <= 6, 1500 cycles), says infeasible exactly when
+    # the search finds nothing, and its answer meets every limit
+    rng = np.random.default_rng(1000 + seed)
+    n = 3
+    S, s = float(rng.uniform(50, 500)), rng.uniform(1, 80, n)
+    h, D = rng.uniform(1, 10, n), rng.uniform(20, 900, n)
+    ex = joint.exact_cyclic(S, s, h * D)
+    kw: dict = {}
+    if rng.random() < 0.7:
+        vol = rng.uniform(0.01, 0.05, n)
+        largest = float((D * vol * ex.multiples).sum()) * ex.cycle
+        kw.update(volume=vol, capacity_volume=rng.uniform(0.3, 1.2) * largest)
+    if rng.random() < 0.6:
+        u = rng.uniform(1, 20, n)
+        smallest = float((D * u)[ex.multiples == 1].sum()) * ex.cycle
+        kw.update(unit_value=u, min_order_value=rng.uniform(0.5, 2.5) * smallest)
+    if rng.random() < 0.4:
+        kw.update(max_interval=ex.cycle * ex.multiples * rng.uniform(0.4, 1.5, n))
+    if rng.random() < 0.5:
+        kw.update(demand_var=D * rng.uniform(0.5, 3, n), lead_time=0.03, backorder_cost=10 * h)
+    fam = gm.make_family(S, s, h, D, **kw)
+    r = gm.solve_family(fam, k_max=6)
+    best, _, _ = brute(fam, np.geomspace(ex.cycle / 6, ex.cycle * 6, 1500), 6)
+    if r.status == "infeasible":
+        assert not math.isfinite(best)
+    else:
+        assert r.status == "optimal" and r.feasible
+        assert r.total_cost <= best * (1 + 1e-9)
