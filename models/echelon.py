@@ -1,10 +1,12 @@
 """Two-echelon kernels: warehouse demand from store order streams, warehouse backorders, delay moments.
 
 Everything here is numpy over items: a warehouse quantity has shape ``(n,)``, a store quantity ``(n, m)`` with
-``m`` the (padded) number of stores per item; absent stores are padded with zero demand. Count distributions are
+``m`` the (padded) number of stores per item; absent stores are padded with zero demand. Count distributions
+are
 2-D pmf arrays ``(n, width)`` on the unit grid ``0 .. width - 1``.
 
-Time is in one consistent unit chosen by the caller (the application uses days): demand rates are per time unit
+Time is in one consistent unit chosen by the caller (the application uses days): demand rates are per time
+unit
 and lead times in time units. The store-level cost and service formulas are the single-site ones
 (:mod:`models.single_site`); this module supplies the lead-time demand moments the stores face.
 
@@ -13,11 +15,13 @@ variance, Svoronos & Zipkin 1988):
 
 * warehouse lead-time demand ``X0`` = own customer demand + ``sum_i Q_i * floor((D_i(L0) + V_i) / Q_i)`` with
   ``V_i`` uniform on ``{0 .. Q_i - 1}`` (the store's inventory position deficit), independent across stores;
-* warehouse inventory position uniform on ``R0 + g, R0 + 2g, .., R0 + Q0`` where ``g`` is the lattice step of the
+* warehouse inventory position uniform on ``R0 + g, R0 + 2g, .., R0 + Q0`` where ``g`` is the lattice step of
+the
   warehouse demand (the gcd of the store batches when there is no own demand and ``Q0`` is a multiple of it,
   else 1; continuous for normal demand);
 * ``E[W] = E[B0] / lambda0`` (Little's law) and, by the distributional form of Little's law for a stream of
-  batches (units arriving during the delay), ``Var(W) = max(0, Var(B0) - v0 E[W]) / lambda0**2`` where ``v0`` is
+  batches (units arriving during the delay), ``Var(W) = max(0, Var(B0) - v0 E[W]) / lambda0**2`` where ``v0``
+  is
   the variance rate of the warehouse demand stream (``sum lambda_i Q_i`` for batch streams);
 * store ``i`` then faces lead-time demand with mean ``d_i (L_i + E[W])`` and variance
   ``s_i**2 (L_i + E[W]) + d_i**2 (sL_i**2 + Var(W))``.
@@ -57,8 +61,11 @@ __all__ = [
 TAIL_TOL = 1e-9
 #: Support of a count pmf: mean + SUPPORT_SDS standard deviations (+ the largest batch), rounded up.
 SUPPORT_SDS = 14.0
-#: Above this support the warehouse demand of count items is moment-matched (normal) instead of convolved.
-MAX_EXACT_SUPPORT = 4096
+#: Largest support of the exact convolution of the stores' order streams; wider count items get a negative
+#: binomial fitted to the same moments (the shape of many batches summed is close to it).
+MAX_EXACT_SUPPORT = 512
+#: Largest support of a count pmf at all; wider items are moment-matched normals.
+MAX_FIT_SUPPORT = 4096
 #: Smallest pmf width; widths are powers of two from here (items are grouped by width).
 MIN_WIDTH = 64
 #: Cells (items x width) per block of the convolution, to bound memory.
@@ -124,8 +131,13 @@ def count_pmf(mean: np.ndarray, var: np.ndarray, width: int) -> tuple[np.ndarray
             v = var[nb][:, None]
             r = m * m / (v - m)
             p = m / v
-            lnb = (special.gammaln(k + r) - special.gammaln(r) - special.gammaln(k + 1.0)
-                   + r * np.log(p) + k * np.log1p(-p))
+            lnb = (
+                special.gammaln(k + r)
+                - special.gammaln(r)
+                - special.gammaln(k + 1.0)
+                + r * np.log(p)
+                + k * np.log1p(-p)
+            )
             logp[nb] = lnb
     pmf = np.exp(logp)
     tail = np.clip(1.0 - pmf.sum(axis=1), 0.0, None)
@@ -215,18 +227,21 @@ def order_stream_variance(mean: np.ndarray, var: np.ndarray, q: np.ndarray) -> n
 
     Examples
     --------
-    >>> float(order_stream_variance(np.array([0.0]), np.array([1e6]), np.array([6.0]))[0])  # doctest: +ELLIPSIS
+    >>> float(order_stream_variance(np.array([0.0]), np.array([1e6]), np.array([6.0]))[0])  # doctest:
+    +ELLIPSIS
     1000006.0...
 
     Notes
     -----
-    Given ``D = d`` with ``d = mQ + r``, the order quantity is ``mQ`` or ``(m + 1)Q`` with probability ``r/Q``,
+    Given ``D = d`` with ``d = mQ + r``, the order quantity is ``mQ`` or ``(m + 1)Q`` with probability
+    ``r/Q``,
     so the conditional variance is ``r (Q - r)``. Its mean uses the Fourier series
     ``r (Q - r) = Q**2/6 - (Q**2 / pi**2) sum_k cos(2 pi k r / Q) / k**2`` and, for normal ``D``,
     ``E cos(2 pi k D / Q) = exp(-2 pi**2 k**2 Var(D) / Q**2) cos(2 pi k E[D] / Q)`` (used when the sd is at
     least ``BATCH_SERIES_RATIO * Q``; otherwise the sum over the intervals ``[jQ, (j + 1)Q)`` of truncated
     normal moments). When the demand spread
-    is large against ``Q`` the correction tends to ``Q**2/6``; when ``Q`` is large against the mean demand it is
+    is large against ``Q`` the correction tends to ``Q**2/6``; when ``Q`` is large against the mean demand it
+    is
     about ``E[D] Q``.
     """
     mean = np.asarray(mean, dtype=float)
@@ -242,7 +257,8 @@ def order_stream_variance(mean: np.ndarray, var: np.ndarray, q: np.ndarray) -> n
     mw, vw_, qw = mean_b[wide][:, None], var_b[wide][:, None], q_b[wide][:, None]
     terms = np.exp(-2.0 * np.pi**2 * k**2 * vw_ / qw**2) * np.cos(2.0 * np.pi * k * mw / qw) / k**2
     corr[wide] = qw[:, 0] ** 2 / 6.0 - qw[:, 0] ** 2 / np.pi**2 * terms.sum(axis=1)
-    # narrow: sum over the batch intervals [jQ, (j+1)Q) within +-BATCH_INTERVAL_SDS sd (truncated normal moments)
+    # narrow: sum over the batch intervals [jQ, (j+1)Q) within +-BATCH_INTERVAL_SDS sd (truncated normal
+    # moments)
     nr = ~wide
     if np.any(nr):
         mu, sd, qq = mean_b[nr][:, None], sd_b[nr][:, None], q_b[nr][:, None]
@@ -372,7 +388,9 @@ def warehouse_demand(
     mean = rate * lead
     win_mean = store_mean * lead[:, None]
     win_var = store_sd**2 * lead[:, None]
-    stream_var = np.where(active, order_stream_variance(win_mean, win_var, np.where(active, store_q, 1.0)), 0.0)
+    stream_var = np.where(
+        active, order_stream_variance(win_mean, win_var, np.where(active, store_q, 1.0)), 0.0
+    )
     var = stream_var.sum(axis=1) + own_sd**2 * lead + rate**2 * lead_sd**2
     # variance of the units arriving in a window w: per store min(short * w, long * w + const)
     stream_short = np.where(active, np.maximum(store_mean * store_q, store_sd**2), 0.0)
@@ -390,8 +408,8 @@ def warehouse_demand(
     integral_q = np.all((np.abs(store_q - np.rint(store_q)) < 1e-9) | ~active, axis=1)
     all_count &= integral_q
     width_need = _support_width(mean, var, pad=np.where(active, store_q, 0).max(axis=1))
-    discrete = all_count & (width_need <= max_support)
-    exact = discrete & (lead_sd <= 0)
+    discrete = all_count & (width_need <= MAX_FIT_SUPPORT)
+    exact = discrete & (lead_sd <= 0) & (width_need <= max_support)
     method = np.where(exact, 1, np.where(discrete, 2, 0)).astype(np.int8)
 
     tail = np.zeros(n)
@@ -407,8 +425,15 @@ def warehouse_demand(
             ex = exact[idx]
             if np.any(ex):
                 k = idx[ex]
-                p, t = _convolve_streams(win_mean[k], win_var[k], qi[k], active[k], own_mean[k] * lead[k],
-                                         own_sd[k] ** 2 * lead[k], int(w))
+                p, t = _convolve_streams(
+                    win_mean[k],
+                    win_var[k],
+                    qi[k],
+                    active[k],
+                    own_mean[k] * lead[k],
+                    own_sd[k] ** 2 * lead[k],
+                    int(w),
+                )
                 pmf[part[ex]] = p
                 tail[k] = t
             if np.any(~ex):
@@ -423,14 +448,28 @@ def warehouse_demand(
     discrete = discrete & ~short
     method = np.where(short, 0, method).astype(np.int8)
     step = np.where(method == 2, 1, step)
-    return WarehouseDemand(mean=mean, var=var, discrete=discrete, blocks=tuple(blocks),
-                           step=np.where(discrete, step, 1),
-                           rate=rate, variance_rate=variance_rate, tail=tail, method=method,
-                           stream_short=stream_short, stream_long=stream_long, stream_const=stream_const,
-                           own_var_rate=own_sd**2,
-                           order_size=np.where(rate > 0, (np.where(active, store_mean * store_q, 0.0).sum(axis=1)
-                                                          + own_mean) / np.where(rate > 0, rate, 1.0), 1.0),
-                           lead_sd=lead_sd.copy())
+    return WarehouseDemand(
+        mean=mean,
+        var=var,
+        discrete=discrete,
+        blocks=tuple(blocks),
+        step=np.where(discrete, step, 1),
+        rate=rate,
+        variance_rate=variance_rate,
+        tail=tail,
+        method=method,
+        stream_short=stream_short,
+        stream_long=stream_long,
+        stream_const=stream_const,
+        own_var_rate=own_sd**2,
+        order_size=np.where(
+            rate > 0,
+            (np.where(active, store_mean * store_q, 0.0).sum(axis=1) + own_mean)
+            / np.where(rate > 0, rate, 1.0),
+            1.0,
+        ),
+        lead_sd=lead_sd.copy(),
+    )
 
 
 def _convolve_streams(win_mean, win_var, q, active, own_mean, own_var, width):
@@ -499,6 +538,7 @@ class WarehouseState:
     backorders_second_moment: np.ndarray
     stockout_probability: np.ndarray
     wait_probability: np.ndarray
+    max_wait: np.ndarray
     negative_share: np.ndarray
     negative_depth: np.ndarray
     negative_square: np.ndarray
@@ -512,9 +552,9 @@ class _DiscreteLoss:
         self.pmf = pmf
         n, width = pmf.shape
         self.width = width
-        sf = np.cumsum(pmf[:, ::-1], axis=1)[:, ::-1]          # P(X >= y)
+        sf = np.cumsum(pmf[:, ::-1], axis=1)[:, ::-1]  # P(X >= y)
         gt = np.concatenate([sf[:, 1:], np.zeros((n, 1))], axis=1)  # P(X > y)
-        n1 = np.cumsum(gt[:, ::-1], axis=1)[:, ::-1]            # sum_{j >= y} P(X > j)
+        n1 = np.cumsum(gt[:, ::-1], axis=1)[:, ::-1]  # sum_{j >= y} P(X > j)
         n2 = np.cumsum((2.0 * n1 - gt)[:, ::-1], axis=1)[:, ::-1]
         self.gt = gt
         self.n1 = n1
@@ -531,20 +571,28 @@ class _DiscreteLoss:
             for src, dst in ((n1, self.p1), (n2, self.p2), (gt, self.pg)):
                 dst[rows] = _strided_cumsum(src[rows], int(g))
 
+    def take(self, keep: np.ndarray) -> _DiscreteLoss:
+        """The tables of a subset of rows (boolean mask)."""
+        out = _DiscreteLoss.__new__(_DiscreteLoss)
+        out.width = self.width
+        for name in ("mean", "second", "step", "p1", "p2", "pg"):
+            setattr(out, name, getattr(self, name)[keep])
+        return out
+
     def lattice_sums(self, r0: np.ndarray, q0: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Sums over y = r0 + g k, k = 1..m (m = q0 / g) of n1(y), n2(y) and P(X > y)."""
         g = self.step
         m = np.maximum(np.rint(q0 / g).astype(np.int64), 1)
         r0 = np.rint(r0).astype(np.int64)
-        a = self.mean - r0                     # for y < 0: n1 = mean - y, n2 = E X^2 - 2 y mean + y^2
-        kneg = np.clip(np.ceil(-r0 / g).astype(np.int64) - 1, 0, m)   # number of k >= 1 with r0 + g k < 0
+        a = self.mean - r0  # for y < 0: n1 = mean - y, n2 = E X^2 - 2 y mean + y^2
+        kneg = np.clip(np.ceil(-r0 / g).astype(np.int64) - 1, 0, m)  # number of k >= 1 with r0 + g k < 0
         k = kneg.astype(float)
         s1 = k * a - g * k * (k + 1) / 2.0
         # sum (X - y)^2 expectations: E X^2 - 2 y mu + y^2 with y = r0 + g j
         sy = k * r0 + g * k * (k + 1) / 2.0
         sy2 = k * r0**2 + 2.0 * r0 * g * k * (k + 1) / 2.0 + g * g * k * (k + 1) * (2 * k + 1) / 6.0
         s2 = k * self.second - 2.0 * self.mean * sy + sy2
-        sgt = k.copy()                         # P(X > y) = 1 for y < 0
+        sgt = k.copy()  # P(X > y) = 1 for y < 0
         # in-table part: k from kneg+1 .. min(m, (width-1-r0)//g)
         ktop = np.minimum(m, np.floor_divide(self.width - 1 - r0, g))
         has = ktop >= kneg + 1
@@ -552,7 +600,7 @@ class _DiscreteLoss:
         t1 = np.take_along_axis(self.p1, ytop, axis=1)[:, 0]
         t2 = np.take_along_axis(self.p2, ytop, axis=1)[:, 0]
         tg = np.take_along_axis(self.pg, ytop, axis=1)[:, 0]
-        ylow = r0 + g * kneg                    # prefix below the first in-table term (same residue class)
+        ylow = r0 + g * kneg  # prefix below the first in-table term (same residue class)
         low_ok = (ylow >= 0) & has
         yl = np.clip(ylow, 0, self.width - 1)[:, None]
         t1 = t1 - np.where(low_ok, np.take_along_axis(self.p1, yl, axis=1)[:, 0], 0.0)
@@ -561,7 +609,7 @@ class _DiscreteLoss:
         s1 = s1 + np.where(has, t1, 0.0)
         s2 = s2 + np.where(has, t2, 0.0)
         sgt = sgt + np.where(has, tg, 0.0)
-        kle = np.clip(np.floor_divide(-r0, g), 0, m)   # k >= 1 with r0 + g k <= 0 (no stock ahead)
+        kle = np.clip(np.floor_divide(-r0, g), 0, m)  # k >= 1 with r0 + g k <= 0 (no stock ahead)
         return s1 / m, s2 / m, sgt / m, kle / m, -sy / m, sy2 / m
 
 
@@ -580,8 +628,13 @@ def discrete_tables(demand: WarehouseDemand) -> list:
     return [(rows, _DiscreteLoss(pmf, demand.step[rows])) for rows, pmf in demand.blocks if rows.size]
 
 
-def warehouse_moments(demand: WarehouseDemand, reorder_point: np.ndarray, order_quantity: np.ndarray,
-                      *, tables: list | None = None) -> WarehouseState:
+def warehouse_moments(
+    demand: WarehouseDemand,
+    reorder_point: np.ndarray,
+    order_quantity: np.ndarray,
+    *,
+    tables: list | None = None,
+) -> WarehouseState:
     """Warehouse expected on hand, backorders and second moment of backorders for ``(R0, Q0)``.
 
     Parameters
@@ -622,12 +675,14 @@ def warehouse_moments(demand: WarehouseDemand, reorder_point: np.ndarray, order_
     neg_depth = np.zeros(n)
     neg_sq = np.zeros(n)
     wait = np.zeros(n)
-    order_size = np.where(demand.rate > 0, demand.order_size, 1.0) if demand.order_size is not None else np.ones(n)
+    order_size = (
+        np.where(demand.rate > 0, demand.order_size, 1.0) if demand.order_size is not None else np.ones(n)
+    )
     ltd_var = np.maximum(np.asarray(demand.var, dtype=float), 0.0).copy()
     eip = np.where(demand.discrete, r0 + (q0 + demand.step) / 2.0, r0 + q0 / 2.0)
     d = demand.discrete
     if np.any(d):
-        for rows, loss in (tables if tables is not None else discrete_tables(demand)):
+        for rows, loss in tables if tables is not None else discrete_tables(demand):
             s1, s2, sg, ns, nd, nq = loss.lattice_sums(r0[rows], q0[rows])
             neg_sq[rows] = nq
             neg_share[rows] = ns
@@ -667,11 +722,25 @@ def warehouse_moments(demand: WarehouseDemand, reorder_point: np.ndarray, order_
     eb = np.maximum(eb, 0.0)
     eb2 = np.maximum(eb2, eb * eb)
     on_hand = np.maximum(eip - demand.mean + eb, 0.0)
-    return WarehouseState(expected_on_hand=on_hand, expected_backorders=eb, backorders_second_moment=eb2,
-                          negative_share=neg_share, negative_depth=neg_depth, negative_square=neg_sq,
-                          ltd_var=ltd_var,
-                          stockout_probability=np.clip(stockout, 0.0, 1.0),
-                          wait_probability=np.clip(wait, 0.0, 1.0))
+    # longest plausible wait: the lead time (3 sd up) plus the passage to the deepest position below zero
+    rate_safe = np.where(demand.rate > 0, demand.rate, 1.0)
+    max_wait = (
+        demand.mean / rate_safe
+        + 3.0 * demand.lead_sd
+        + np.maximum(-(r0 + np.where(demand.discrete, demand.step, 0.0)), 0.0) / rate_safe
+    )
+    return WarehouseState(
+        expected_on_hand=on_hand,
+        expected_backorders=eb,
+        backorders_second_moment=eb2,
+        negative_share=neg_share,
+        negative_depth=neg_depth,
+        negative_square=neg_sq,
+        ltd_var=ltd_var,
+        stockout_probability=np.clip(stockout, 0.0, 1.0),
+        wait_probability=np.clip(wait, 0.0, 1.0),
+        max_wait=max_wait,
+    )
 
 
 def arrival_variance(demand: WarehouseDemand, window: np.ndarray) -> np.ndarray:
@@ -731,7 +800,8 @@ def delay_moments(state: WarehouseState, demand: WarehouseDemand) -> tuple[np.nd
 
     Notes
     -----
-    ``E[W] = E[B0] / lambda0`` (Little's law; Sherbrooke 1968). For the second moment the warehouse is seen, as
+    ``E[W] = E[B0] / lambda0`` (Little's law; Sherbrooke 1968). For the second moment the warehouse is seen,
+    as
     an (R0, Q0) system with uniform inventory position, as a mixture of base-stock systems with
     ``S0 = y`` on the lattice ``R0 + g .. R0 + Q0``:
 
@@ -740,7 +810,8 @@ def delay_moments(state: WarehouseState, demand: WarehouseDemand) -> tuple[np.nd
       the variance of the demand noise in a window ``w`` (:func:`arrival_variance`, at the mean wait of these
       points). For Poisson unit demand ``v(w) = lambda0 w`` and this is the distributional Little's law,
       exact, giving the Svoronos & Zipkin (1988) delay variance;
-    * ``y <= 0``: the order waits for a warehouse order not yet placed: ``W = L0 + T_|y|`` with ``T_k`` the time
+    * ``y <= 0``: the order waits for a warehouse order not yet placed: ``W = L0 + T_|y|`` with ``T_k`` the
+    time
       for the warehouse demand to reach ``k`` more units, ``E T = k / lambda0``. ``T`` is made of the stores'
       own future demand: given the ``k`` units, a store's share of them is binomial, whose variance does not
       exceed its mean, so ``T`` is taken at its mean (no variance of its own). For one-for-one Poisson stores
@@ -780,8 +851,14 @@ def delay_moments(state: WarehouseState, demand: WarehouseDemand) -> tuple[np.nd
     return ew, vw
 
 
-def store_ltd_moments(daily_mean: np.ndarray, daily_sd: np.ndarray, lead: np.ndarray, lead_sd: np.ndarray,
-                      mean_delay: np.ndarray, var_delay: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def store_ltd_moments(
+    daily_mean: np.ndarray,
+    daily_sd: np.ndarray,
+    lead: np.ndarray,
+    lead_sd: np.ndarray,
+    mean_delay: np.ndarray,
+    var_delay: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray]:
     """Lead-time demand mean and sd a store faces behind a warehouse with random delay ``W``.
 
     Parameters
@@ -827,7 +904,7 @@ def exact_one_for_one(
     *,
     width: int | None = None,
 ) -> dict[str, np.ndarray]:
-    """Exact steady state of one-for-one Poisson stores behind an (R0, Q0) warehouse (binomial disaggregation).
+    """Exact steady state of one-for-one Poisson stores behind an (R0, Q0) warehouse (Graves 1985).
 
     Parameters
     ----------
@@ -864,7 +941,8 @@ def exact_one_for_one(
 
     References
     ----------
-    Graves, S. C. (1985). A multi-echelon inventory model for a repairable item with one-for-one replenishment.
+    Graves, S. C. (1985). A multi-echelon inventory model for a repairable item with one-for-one
+    replenishment.
     Management Science 31(10), 1247-1256. Axsäter, S. (1990). Simple solution procedures for a class of
     two-echelon inventory problems. Operations Research 38(1), 64-69.
     """
@@ -890,11 +968,11 @@ def exact_one_for_one(
         for k in range(1, q0[row] + 1):
             s0 = r0[row] + k
             shifted = np.zeros(width)
-            if s0 <= 0:                       # B0 = X - s0: shift right by -s0
+            if s0 <= 0:  # B0 = X - s0: shift right by -s0
                 shifted[-s0:] = x[row, : width + s0]
-            else:                             # B0 = (X - s0)^+
+            else:  # B0 = (X - s0)^+
                 shifted[0] = x[row, : s0 + 1].sum()
-                shifted[1: width - s0] = x[row, s0 + 1:]
+                shifted[1 : width - s0] = x[row, s0 + 1 :]
             b0[row] += shifted / q0[row]
     eb0 = b0 @ grid
     p = np.where(lam0[:, None] > 0, lam / np.where(lam0[:, None] > 0, lam0[:, None], 1.0), 0.0)
@@ -929,13 +1007,17 @@ def exact_one_for_one(
 # ----------------------------------------------------------------------------------------------------------
 # two-level evaluation and optimisation (stores through the single-site functions)
 # ----------------------------------------------------------------------------------------------------------
-#: Candidates per round of the warehouse reorder-point search.
-SEARCH_POINTS = 9
+#: Grid points bracketing the warehouse reorder point before the golden-section steps.
+SEARCH_POINTS = 5
+#: Most golden-section steps of the warehouse reorder-point search.
+GOLDEN_MAX_ITER = 10
+#: Items per process below which optimise_two_level does not split the work.
+PARALLEL_MIN_ITEMS = 500
 #: Rounds of the search (each narrows the bracket around the best candidate).
 SEARCH_ROUNDS = 7
 #: The search stops when the bracket is below this many units (count) / this fraction of the LTD sd (normal).
 SEARCH_TOL_UNITS = 1.0
-SEARCH_TOL_SD = 1e-3
+SEARCH_TOL_SD = 0.2
 #: Upper end of the search: warehouse LTD mean + SEARCH_HIGH_SDS standard deviations.
 SEARCH_HIGH_SDS = 5.0
 
@@ -1025,16 +1107,6 @@ def _store_codes(count: np.ndarray, mean: np.ndarray, sd: np.ndarray) -> np.ndar
     return np.where(count, np.where(over, md.NEGBIN, md.POISSON), md.NORMAL).astype(np.int8)
 
 
-def _store_block(inp: TwoLevelInputs, ew: np.ndarray, vw: np.ndarray):
-    """Flattened store arrays for the active stores, given the warehouse delay moments per item."""
-    act = inp.store_active
-    rows = np.nonzero(act)[0]
-    mean, sd = store_ltd_moments(inp.store_mean[act], inp.store_sd[act], inp.store_lead[act],
-                                 inp.store_lead_sd[act], ew[rows], vw[rows])
-    codes = _store_codes(inp.store_count[act], mean, sd)
-    return rows, mean, sd, codes
-
-
 def _warehouse_rows(inp: TwoLevelInputs, demand: WarehouseDemand, state: WarehouseState, r0, q0):
     """Warehouse cost and service given its steady state."""
     lam0 = demand.rate
@@ -1055,28 +1127,56 @@ def _store_args(inp: TwoLevelInputs, ew, vw, pw):
     act = inp.store_active
     rows = np.nonzero(act)[0]
     pw = np.zeros_like(ew) if pw is None else pw
-    return rows, (inp.store_mean[act] * inp.days_per_year, inp.store_mean[act], inp.store_sd[act],
-                  inp.store_lead[act], inp.store_lead_sd[act], inp.store_count[act], inp.store_order_cost[act],
-                  inp.store_holding_cost[act], inp.store_backorder_cost[act], inp.store_target[act])
+    return rows, (
+        inp.store_mean[act] * inp.days_per_year,
+        inp.store_mean[act],
+        inp.store_sd[act],
+        inp.store_lead[act],
+        inp.store_lead_sd[act],
+        inp.store_count[act],
+        inp.store_order_cost[act],
+        inp.store_holding_cost[act],
+        inp.store_backorder_cost[act],
+        inp.store_target[act],
+    )
 
 
-def _optimise_stores(inp: TwoLevelInputs, ew, vw, store_q, pw=None, refine=False):
+def _optimise_stores(inp: TwoLevelInputs, ew, vw, store_q, pw=None, refine=False, mixture=True, mw=None):
     rows, args = _store_args(inp, ew, vw, pw)
     act = inp.store_active
     pwv = np.zeros_like(ew) if pw is None else pw
-    pol, mean, sd, codes = leaf_policies(*args, store_q[act], inp.store_pack[act], ew[rows], vw[rows], pwv[rows],
-                                         mode=inp.mode, basis=inp.backorder_basis, refine=refine)
+    pol, mean, sd, codes = leaf_policies(
+        *args,
+        store_q[act],
+        inp.store_pack[act],
+        ew[rows],
+        vw[rows],
+        pwv[rows],
+        mode=inp.mode,
+        basis=inp.backorder_basis,
+        refine=refine,
+        mixture=mixture,
+        max_wait=None if mw is None else mw[rows],
+    )
     return rows, mean, sd, codes, pol
 
 
-def _evaluate_stores(inp: TwoLevelInputs, ew, vw, store_r, store_q, pw=None):
+def _evaluate_stores(inp: TwoLevelInputs, ew, vw, store_r, store_q, pw=None, mw=None):
     rows, args = _store_args(inp, ew, vw, pw)
     act = inp.store_active
     pwv = np.zeros_like(ew) if pw is None else pw
-    pol, mean, sd, codes = leaf_policies(*args, np.where(np.isfinite(store_q[act]), store_q[act], 0.0),
-                                         inp.store_pack[act], ew[rows], vw[rows], pwv[rows], mode=inp.mode,
-                                         basis=inp.backorder_basis,
-                                         reorder_point=np.where(np.isfinite(store_r[act]), store_r[act], 0.0))
+    pol, mean, sd, codes = leaf_policies(
+        *args,
+        np.where(np.isfinite(store_q[act]), store_q[act], 0.0),
+        inp.store_pack[act],
+        ew[rows],
+        vw[rows],
+        pwv[rows],
+        mode=inp.mode,
+        basis=inp.backorder_basis,
+        reorder_point=np.where(np.isfinite(store_r[act]), store_r[act], 0.0),
+        max_wait=None if mw is None else mw[rows],
+    )
     return rows, mean, sd, codes, pol
 
 
@@ -1100,19 +1200,167 @@ def _assemble(inp, demand, r0, q0, state, ew, vw, rows, mean, sd, codes, pol, it
     for rws, pmf in demand.blocks:
         cdf = np.cumsum(pmf, axis=1)
         idx = np.clip(np.rint(r0[rws]).astype(np.int64), -1, cdf.shape[1] - 1)
-        cdf_r0[rws] = np.where(idx < 0, 0.0, np.take_along_axis(cdf, np.maximum(idx, 0)[:, None], axis=1)[:, 0])
-    cyc = np.where(demand.discrete, cdf_r0,
-                   special.ndtr((r0 - demand.mean) / np.maximum(sd0, SD_FLOOR * np.maximum(1.0, demand.mean))))
+        cdf_r0[rws] = np.where(
+            idx < 0, 0.0, np.take_along_axis(cdf, np.maximum(idx, 0)[:, None], axis=1)[:, 0]
+        )
+    cyc = np.where(
+        demand.discrete,
+        cdf_r0,
+        special.ndtr((r0 - demand.mean) / np.maximum(sd0, SD_FLOOR * np.maximum(1.0, demand.mean))),
+    )
     return TwoLevelResult(
-        store_reorder_point=grid(pol.reorder_point), store_order_quantity=grid(pol.order_quantity),
-        store_ltd_mean=grid(mean), store_ltd_sd=grid(sd), store_distribution=grid(codes, fill=-1),
-        store_policy=pol, warehouse_reorder_point=r0, warehouse_order_quantity=q0,
-        warehouse_on_hand=state.expected_on_hand, warehouse_backorders=state.expected_backorders,
-        warehouse_fill_rate=fill, warehouse_cycle_service=cyc, warehouse_ltd_mean=demand.mean,
-        warehouse_ltd_sd=sd0, warehouse_ordering_cost=ordering, warehouse_holding_cost=holding,
-        warehouse_backorder_cost=back, mean_delay=ew, var_delay=vw, store_cost=store_cost,
-        network_cost=ordering + holding + back + store_cost, iterations=iterations, converged=converged,
-        demand_method=demand.method)
+        store_reorder_point=grid(pol.reorder_point),
+        store_order_quantity=grid(pol.order_quantity),
+        store_ltd_mean=grid(mean),
+        store_ltd_sd=grid(sd),
+        store_distribution=grid(codes, fill=-1),
+        store_policy=pol,
+        warehouse_reorder_point=r0,
+        warehouse_order_quantity=q0,
+        warehouse_on_hand=state.expected_on_hand,
+        warehouse_backorders=state.expected_backorders,
+        warehouse_fill_rate=fill,
+        warehouse_cycle_service=cyc,
+        warehouse_ltd_mean=demand.mean,
+        warehouse_ltd_sd=sd0,
+        warehouse_ordering_cost=ordering,
+        warehouse_holding_cost=holding,
+        warehouse_backorder_cost=back,
+        mean_delay=ew,
+        var_delay=vw,
+        store_cost=store_cost,
+        network_cost=ordering + holding + back + store_cost,
+        iterations=iterations,
+        converged=converged,
+        demand_method=demand.method,
+    )
+
+
+def _take_inputs(inp, idx):
+    """The inputs of a subset of items (rows ``idx``)."""
+    from dataclasses import fields, replace
+
+    n = inp.n
+    return replace(
+        inp,
+        **{
+            f.name: getattr(inp, f.name)[idx]
+            for f in fields(inp)
+            if isinstance(getattr(inp, f.name), np.ndarray) and getattr(inp, f.name).shape[:1] == (n,)
+        },
+    )
+
+
+def _take_demand(demand: WarehouseDemand, idx: np.ndarray) -> WarehouseDemand:
+    from dataclasses import fields, replace
+
+    n = demand.mean.size
+    pos = np.full(n, -1, dtype=np.int64)
+    pos[idx] = np.arange(idx.size)
+    blocks = tuple((pos[rows[pos[rows] >= 0]], pmf[pos[rows] >= 0]) for rows, pmf in demand.blocks)
+    out = {
+        f.name: getattr(demand, f.name)[idx]
+        for f in fields(demand)
+        if isinstance(getattr(demand, f.name), np.ndarray) and getattr(demand, f.name).shape[:1] == (n,)
+    }
+    return replace(demand, blocks=blocks, **out)
+
+
+def _take_tables(tables, idx, n):
+    pos = np.full(n, -1, dtype=np.int64)
+    pos[idx] = np.arange(idx.size)
+    out = []
+    for rows, loss in tables:
+        keep = pos[rows] >= 0
+        if keep.any():
+            out.append((pos[rows[keep]], loss.take(keep)))
+    return out
+
+
+def golden_search(
+    f,
+    lo: np.ndarray,
+    hi: np.ndarray,
+    integer: np.ndarray,
+    tol: np.ndarray,
+    *,
+    points: int = 6,
+    max_iter: int = 40,
+    extra: np.ndarray | None = None,
+    subset: bool = False,
+):
+    """Vectorised minimisation of ``f`` (array of x -> array of values) per element over ``[lo, hi]``.
+
+    A grid of ``points`` candidates (plus ``extra``, e.g. the incumbent) brackets the minimum; golden-section
+    steps (one evaluation of ``f`` per step) narrow the bracket to ``tol`` (integers: to adjacent points).
+    With ``subset`` the steps call ``f(x, idx)`` on the elements not yet converged only. Returns ``(x, f(x),
+    iterations, converged)``. Assumes unimodality within the bracket.
+    """
+    n = lo.size
+    lo = np.where(integer, np.floor(lo), lo)
+    hi = np.where(integer, np.ceil(hi), hi)
+    hi = np.maximum(hi, lo + np.where(integer, 1.0, 1e-12))
+    t = np.linspace(0.0, 1.0, points)
+    grid = lo[:, None] + t[None, :] * (hi - lo)[:, None]
+    grid = np.where(integer[:, None], np.rint(grid), grid)
+    vals = np.stack([f(grid[:, j]) for j in range(points)], axis=1)
+    best_x = grid[np.arange(n), np.argmin(vals, axis=1)]
+    best_f = np.min(vals, axis=1)
+    if extra is not None:
+        extra = np.where(integer, np.rint(extra), extra)
+        fe = f(extra)
+        take = fe < best_f
+        best_x = np.where(take, extra, best_x)
+        best_f = np.where(take, fe, best_f)
+    j = np.argmin(vals, axis=1)
+    a = grid[np.arange(n), np.maximum(j - 1, 0)]
+    b = grid[np.arange(n), np.minimum(j + 1, points - 1)]
+    gr = (np.sqrt(5.0) - 1.0) / 2.0
+
+    def inner(a, b):
+        x1 = b - gr * (b - a)
+        x2 = a + gr * (b - a)
+        x1 = np.where(integer, np.floor(x1), x1)
+        x2 = np.where(integer, np.maximum(np.ceil(x2), x1 + 1.0), x2)
+        return x1, x2
+
+    x1, x2 = inner(a, b)
+    f1, f2 = f(x1), f(x2)
+    its = np.zeros(n, dtype=np.int64)
+    done = np.where(integer, b - a <= np.maximum(2.0, tol), b - a <= tol)
+    for _ in range(max_iter):
+        if np.all(done):
+            break
+        left = f1 <= f2  # minimum in [a, x2]
+        a_new = np.where(left, a, x1)
+        b_new = np.where(left, x2, b)
+        # reuse the surviving interior point, place one new point
+        keep = np.where(left, x1, x2)
+        fkeep = np.where(left, f1, f2)
+        y1, y2 = inner(a_new, b_new)
+        new = np.where(left, y1, y2)
+        new = np.where(integer & (new == keep), np.where(left, keep - 1.0, keep + 1.0), new)
+        new = np.clip(new, a_new, b_new)
+        live = np.flatnonzero(~done)
+        fnew = np.where(done, f1, 0.0)
+        fnew[live] = f(new[live], live) if subset else f(new)[live]
+        nx1 = np.where(left, new, keep)
+        nx2 = np.where(left, keep, new)
+        nf1 = np.where(left, fnew, fkeep)
+        nf2 = np.where(left, fkeep, fnew)
+        swap = nx1 > nx2
+        nx1, nx2 = np.where(swap, nx2, nx1), np.where(swap, nx1, nx2)
+        nf1, nf2 = np.where(swap, nf2, nf1), np.where(swap, nf1, nf2)
+        a, b = np.where(done, a, a_new), np.where(done, b, b_new)
+        x1, x2 = np.where(done, x1, nx1), np.where(done, x2, nx2)
+        f1, f2 = np.where(done, f1, nf1), np.where(done, f2, nf2)
+        its += ~done
+        done |= np.where(integer, b - a <= np.maximum(2.0, tol), b - a <= tol)
+    for x, fx in ((x1, f1), (x2, f2)):
+        take = fx < best_f
+        best_x = np.where(take, x, best_x)
+        best_f = np.where(take, fx, best_f)
+    return best_x, best_f, its, done
 
 
 def _lattice_q0(demand: WarehouseDemand, q0: np.ndarray) -> WarehouseDemand:
@@ -1123,9 +1371,15 @@ def _lattice_q0(demand: WarehouseDemand, q0: np.ndarray) -> WarehouseDemand:
     return WarehouseDemand(**{**demand.__dict__, "step": np.where(ok, demand.step, 1)})
 
 
-def evaluate_two_level(inp: TwoLevelInputs, store_reorder_point: np.ndarray, store_order_quantity: np.ndarray,
-                       warehouse_reorder_point: np.ndarray, warehouse_order_quantity: np.ndarray
-                       ) -> TwoLevelResult:
+def evaluate_two_level(
+    inp: TwoLevelInputs,
+    store_reorder_point: np.ndarray,
+    store_order_quantity: np.ndarray,
+    warehouse_reorder_point: np.ndarray,
+    warehouse_order_quantity: np.ndarray,
+    *,
+    demand: WarehouseDemand | None = None,
+) -> TwoLevelResult:
     """Evaluate given ``(R, Q)`` at a warehouse and its stores, per item (METRIC-type, batch ordering).
 
     Parameters
@@ -1145,8 +1399,10 @@ def evaluate_two_level(inp: TwoLevelInputs, store_reorder_point: np.ndarray, sto
     Notes
     -----
     Warehouse demand by :func:`warehouse_demand`, its state by :func:`warehouse_moments`, delay moments by
-    :func:`delay_moments`; each store is then evaluated by ``models.single_site.evaluate_policy`` with lead-time
-    demand from :func:`store_ltd_moments` (negative binomial for counts when over-dispersed, normal otherwise).
+    :func:`delay_moments`; each store is then evaluated by ``models.single_site.evaluate_policy`` with
+    lead-time
+    demand from :func:`store_ltd_moments` (negative binomial for counts when over-dispersed, normal
+    otherwise).
 
     References
     ----------
@@ -1156,20 +1412,43 @@ def evaluate_two_level(inp: TwoLevelInputs, store_reorder_point: np.ndarray, sto
     """
     sq = np.asarray(store_order_quantity, dtype=float)
     flowing = inp.store_active & (inp.store_mean > 0) & np.isfinite(sq) & (sq > 0)
-    demand = warehouse_demand(np.where(flowing, inp.store_mean, 0.0), inp.store_sd,
-                              np.where(flowing, sq, 1.0), inp.store_count, inp.warehouse_lead,
-                              inp.warehouse_lead_sd, inp.warehouse_own_mean, inp.warehouse_own_sd,
-                              inp.warehouse_count)
+    if demand is None:  # (optional argument: the same demand already built by the caller for these Q)
+        demand = warehouse_demand(
+            np.where(flowing, inp.store_mean, 0.0),
+            inp.store_sd,
+            np.where(flowing, sq, 1.0),
+            inp.store_count,
+            inp.warehouse_lead,
+            inp.warehouse_lead_sd,
+            inp.warehouse_own_mean,
+            inp.warehouse_own_sd,
+            inp.warehouse_count,
+        )
     r0 = np.asarray(warehouse_reorder_point, dtype=float)
     q0 = np.asarray(warehouse_order_quantity, dtype=float)
     demand = _lattice_q0(demand, q0)
     state = warehouse_moments(demand, r0, q0)
     ew, vw = delay_moments(state, demand)
-    rows, mean, sd, codes, pol = _evaluate_stores(inp, ew, vw, np.asarray(store_reorder_point, dtype=float), sq,
-                                                  state.wait_probability)
+    rows, mean, sd, codes, pol = _evaluate_stores(
+        inp, ew, vw, np.asarray(store_reorder_point, dtype=float), sq, state.wait_probability, state.max_wait
+    )
     n = inp.n
-    return _assemble(inp, demand, r0, q0, state, ew, vw, rows, mean, sd, codes, pol,
-                     np.zeros(n, dtype=np.int64), np.ones(n, dtype=bool))
+    return _assemble(
+        inp,
+        demand,
+        r0,
+        q0,
+        state,
+        ew,
+        vw,
+        rows,
+        mean,
+        sd,
+        codes,
+        pol,
+        np.zeros(n, dtype=np.int64),
+        np.ones(n, dtype=bool),
+    )
 
 
 def single_site_seed(inp: TwoLevelInputs):
@@ -1188,13 +1467,20 @@ def single_site_seed(inp: TwoLevelInputs):
     store_q = np.full((n, m), 1.0)
     store_r = np.zeros((n, m))
     q_seed = np.asarray(pol.order_quantity, dtype=float)
-    store_q[act] = np.where(q_seed > 0, q_seed, np.nan)   # zero-demand stores keep a free Q
+    store_q[act] = np.where(q_seed > 0, q_seed, np.nan)  # zero-demand stores keep a free Q
     store_r[act] = pol.reorder_point
     flowing = act & (inp.store_mean > 0) & np.isfinite(store_q)
-    demand = warehouse_demand(np.where(flowing, inp.store_mean, 0.0), inp.store_sd,
-                              np.where(flowing, store_q, 1.0), inp.store_count,
-                              inp.warehouse_lead, inp.warehouse_lead_sd, inp.warehouse_own_mean,
-                              inp.warehouse_own_sd, inp.warehouse_count)
+    demand = warehouse_demand(
+        np.where(flowing, inp.store_mean, 0.0),
+        inp.store_sd,
+        np.where(flowing, store_q, 1.0),
+        inp.store_count,
+        inp.warehouse_lead,
+        inp.warehouse_lead_sd,
+        inp.warehouse_own_mean,
+        inp.warehouse_own_sd,
+        inp.warehouse_count,
+    )
     w = np.where(act, inp.store_mean, 0.0)
     wsum = np.where(w.sum(axis=1) > 0, w.sum(axis=1), 1.0)
     proxy_b = (w * np.where(act, inp.store_backorder_cost, 0.0)).sum(axis=1) / wsum
@@ -1202,30 +1488,73 @@ def single_site_seed(inp: TwoLevelInputs):
     b0 = np.where(inp.warehouse_backorder_cost > 0, inp.warehouse_backorder_cost, proxy_b)
     t0 = np.where(np.isfinite(inp.warehouse_target), inp.warehouse_target, proxy_t)
     sd0 = np.sqrt(np.maximum(demand.var, 0.0))
-    code0 = np.where(demand.discrete, _store_codes(np.ones(n, dtype=bool), demand.mean, sd0), 0).astype(np.int8)
+    code0 = np.where(demand.discrete, _store_codes(np.ones(n, dtype=bool), demand.mean, sd0), 0).astype(
+        np.int8
+    )
     # Q0: a multiple of the store batch lattice for count items (orders arrive in those batches)
-    pol0 = ss.optimise_policy(demand.rate * inp.days_per_year, demand.mean, sd0, inp.warehouse_order_cost,
-                              inp.warehouse_holding_cost, distribution=code0, mode=inp.mode, backorder_cost=b0,
-                              backorder_basis=inp.backorder_basis, target=t0,
-                              order_quantity=inp.warehouse_fixed_q, pack_size=inp.warehouse_pack)
+    pol0 = ss.optimise_policy(
+        demand.rate * inp.days_per_year,
+        demand.mean,
+        sd0,
+        inp.warehouse_order_cost,
+        inp.warehouse_holding_cost,
+        distribution=code0,
+        mode=inp.mode,
+        backorder_cost=b0,
+        backorder_basis=inp.backorder_basis,
+        target=t0,
+        order_quantity=inp.warehouse_fixed_q,
+        pack_size=inp.warehouse_pack,
+    )
     q0 = np.asarray(pol0.order_quantity, dtype=float)
     free = ~np.isfinite(inp.warehouse_fixed_q) & demand.discrete
-    g = demand.step * np.maximum(np.rint(inp.warehouse_pack), 1).astype(np.int64) // np.gcd(
-        demand.step, np.maximum(np.rint(inp.warehouse_pack), 1).astype(np.int64))
+    g = (
+        demand.step
+        * np.maximum(np.rint(inp.warehouse_pack), 1).astype(np.int64)
+        // np.gcd(demand.step, np.maximum(np.rint(inp.warehouse_pack), 1).astype(np.int64))
+    )
     q0 = np.where(free, np.maximum(np.rint(q0 / g), 1) * g, q0)
     r0 = np.asarray(pol0.reorder_point, dtype=float)
     return store_r, store_q, r0, q0, demand
 
 
-def optimise_two_level(inp: TwoLevelInputs, *, points: int = SEARCH_POINTS, rounds: int = SEARCH_ROUNDS
-                       ) -> tuple[TwoLevelResult, TwoLevelResult]:
+def _concat_results(parts: list[TwoLevelResult]) -> TwoLevelResult:
+    from dataclasses import fields
+
+    from models import single_site as ss
+
+    out = {}
+    for f in fields(TwoLevelResult):
+        vals = [getattr(p, f.name) for p in parts]
+        if f.name == "store_policy":
+            out[f.name] = ss.SitePolicy(
+                **{
+                    g: np.concatenate([np.asarray(getattr(v, g)) for v in vals])
+                    for g in ss.SitePolicy.__dataclass_fields__
+                }
+            )
+        else:
+            out[f.name] = np.concatenate(vals, axis=0)
+    return TwoLevelResult(**out)
+
+
+def _optimise_chunk(args):
+    inp, points, rounds = args
+    return optimise_two_level(inp, points=points, rounds=rounds, workers=1)
+
+
+def optimise_two_level(
+    inp: TwoLevelInputs, *, points: int = SEARCH_POINTS, rounds: int = SEARCH_ROUNDS, workers: int = 1
+) -> tuple[TwoLevelResult, TwoLevelResult]:
     """Network-optimal warehouse reorder point with the stores re-optimised for each candidate.
 
     Parameters
     ----------
     inp : TwoLevelInputs
     points, rounds : int
-        Candidates per round and number of rounds of the bracketing grid search.
+        Grid points bracketing the warehouse reorder point (``rounds`` is kept for the tree search).
+    workers : int
+        Processes over chunks of items (items are independent); 1 runs in this process.
 
     Returns
     -------
@@ -1240,10 +1569,13 @@ def optimise_two_level(inp: TwoLevelInputs, *, points: int = SEARCH_POINTS, roun
 
     Notes
     -----
-    Order quantities stay as seeded (or as fixed). For every item the warehouse reorder point ``R0`` runs over a
+    Order quantities stay as seeded (or as fixed). For every item the warehouse reorder point ``R0`` runs over
+    a
     grid between ``-Q0`` (no stock kept) and the LTD mean + ``SEARCH_HIGH_SDS`` sd; each candidate gives the
-    delay moments, the stores' reorder points are re-optimised for them (``models.single_site.optimise_policy``
-    with the stores' own cost or service mode) and the network cost (warehouse ordering + holding + own-customer
+    delay moments, the stores' reorder points are re-optimised for them
+    (``models.single_site.optimise_policy``
+    with the stores' own cost or service mode) and the network cost (warehouse ordering + holding +
+    own-customer
     backorders, plus the stores' total costs) is computed. The grid then narrows around the best candidate
     (``points`` candidates, ``rounds`` rounds, stop below ``SEARCH_TOL_UNITS`` units / ``SEARCH_TOL_SD`` sd),
     vectorised over items. In the service modes the stores meet their targets for each candidate, so the least
@@ -1255,9 +1587,16 @@ def optimise_two_level(inp: TwoLevelInputs, *, points: int = SEARCH_POINTS, roun
     Journal of Production Economics 81-82, 545-553.
     """
     n, m = inp.store_mean.shape
+    if workers > 1 and n >= 2 * PARALLEL_MIN_ITEMS:
+        from concurrent.futures import ProcessPoolExecutor
+
+        chunks = np.array_split(np.arange(n), workers)
+        with ProcessPoolExecutor(max_workers=workers) as pool:
+            parts = list(pool.map(_optimise_chunk, [(_take_inputs(inp, c), points, rounds) for c in chunks]))
+        return _concat_results([p[0] for p in parts]), _concat_results([p[1] for p in parts])
     store_r, store_q, r0_seed, q0, demand = single_site_seed(inp)
     demand = _lattice_q0(demand, q0)
-    seed_eval = evaluate_two_level(inp, store_r, store_q, r0_seed, q0)
+    seed_eval = evaluate_two_level(inp, store_r, store_q, r0_seed, q0, demand=demand)
     tables = discrete_tables(demand)
     sd0 = np.sqrt(np.maximum(demand.var, 0.0))
     disc = demand.discrete
@@ -1266,41 +1605,46 @@ def optimise_two_level(inp: TwoLevelInputs, *, points: int = SEARCH_POINTS, roun
     hi = np.maximum(hi, r0_seed)
     lo = np.minimum(lo, r0_seed)
     best_r = r0_seed.copy()
-    best_c = np.full(n, np.inf)
     its = np.zeros(n, dtype=np.int64)
     done = np.zeros(n, dtype=bool)
 
-    def network_cost(r0c):
-        state = warehouse_moments(demand, r0c, q0, tables=tables)
-        ew, vw = delay_moments(state, demand)
-        rows, _, _, _, pol = _optimise_stores(inp, ew, vw, store_q, state.wait_probability)
-        ordering, holding, back, _ = _warehouse_rows(inp, demand, state, r0c, q0)
-        return ordering + holding + back + _per_item(rows, np.asarray(pol.total_cost, dtype=float), n)
+    def network_cost(r0c, idx=None):
+        if idx is None:
+            sub_inp, sub_dem, sub_tab, sub_q, q0s = inp, demand, tables, store_q, q0
+        else:
+            sub_inp, sub_dem, sub_tab = (
+                _take_inputs(inp, idx),
+                _take_demand(demand, idx),
+                _take_tables(tables, idx, n),
+            )
+            sub_q, q0s = store_q[idx], q0[idx]
+        state = warehouse_moments(sub_dem, r0c, q0s, tables=sub_tab)
+        ew, vw = delay_moments(state, sub_dem)
+        rows, _, _, _, pol = _optimise_stores(sub_inp, ew, vw, sub_q, state.wait_probability, mixture=False)
+        ordering, holding, back, _ = _warehouse_rows(sub_inp, sub_dem, state, r0c, q0s)
+        return ordering + holding + back + _per_item(rows, np.asarray(pol.total_cost, dtype=float), r0c.size)
 
-    tol = np.where(disc, SEARCH_TOL_UNITS, SEARCH_TOL_SD * np.maximum(sd0, 1e-9))
-    for _ in range(rounds):
-        step = (hi - lo) / (points - 1)
-        t = np.linspace(0.0, 1.0, points)
-        cand = lo[:, None] + t[None, :] * (hi - lo)[:, None]
-        cand = np.where(disc[:, None], np.rint(cand), cand)
-        costs = np.empty((n, points))
-        for j in range(points):
-            costs[:, j] = network_cost(cand[:, j])
-        j = np.argmin(costs, axis=1)
-        cj = costs[np.arange(n), j]
-        better = (cj < best_c) & ~done
-        best_c = np.where(better, cj, best_c)
-        best_r = np.where(better, cand[np.arange(n), j], best_r)
-        its += ~done
-        done |= step <= tol
-        lo = np.where(done, lo, np.maximum(best_r - step, lo))
-        hi = np.where(done, hi, np.minimum(best_r + step, hi))
-        if np.all(done):
-            break
+    tol = np.maximum(np.where(disc, SEARCH_TOL_UNITS, 0.0), SEARCH_TOL_SD * np.maximum(sd0, 1e-9))
+    # on a lattice of step g the reorder point moves in steps of g (the residue would only shift positions)
+    g = np.where(disc, demand.step, 1).astype(float)
+    best_x, _, its, done = golden_search(
+        lambda x, idx=None: network_cost(x * (g if idx is None else g[idx]), idx),
+        lo / g,
+        hi / g,
+        disc,
+        tol / g,
+        points=points,
+        max_iter=GOLDEN_MAX_ITER,
+        extra=r0_seed / g,
+        subset=True,
+    )
+    best_r = best_x * g
     # final: stores re-optimised at the best R0, then evaluated
     state = warehouse_moments(demand, best_r, q0, tables=tables)
     ew, vw = delay_moments(state, demand)
-    rows, mean, sd, codes, pol = _optimise_stores(inp, ew, vw, store_q, state.wait_probability, refine=True)
+    rows, mean, sd, codes, pol = _optimise_stores(
+        inp, ew, vw, store_q, state.wait_probability, refine=True, mw=state.max_wait
+    )
     result = _assemble(inp, demand, best_r, q0, state, ew, vw, rows, mean, sd, codes, pol, its, done)
     return result, seed_eval
 
@@ -1310,7 +1654,7 @@ def optimise_two_level(inp: TwoLevelInputs, *, points: int = SEARCH_POINTS, roun
 # ----------------------------------------------------------------------------------------------------------
 @dataclass(frozen=True)
 class TreeInputs:
-    """``n`` items on a site tree of ``S`` slots (slot 0 the root; ``parent[s]`` the slot above, -1 at the root).
+    """``n`` items on a tree of ``S`` slots (slot 0 the root; ``parent[s]`` the slot above, -1 at the root).
 
     Arrays ``(n, S)``: ``active`` (the item is stocked there), ``mean``/``sd`` (own customer demand per day),
     ``lead``/``lead_sd`` (supplier lead time at the root, transit below), ``count`` (count demand),
@@ -1390,11 +1734,13 @@ def _tree_shape(parent: np.ndarray, active: np.ndarray):
     return depth, children, active & ~has_child, active & has_child
 
 
-def _fitted_demand(mean, var, rate, lead_sd, short, long_, const, own_var, count, order_size) -> WarehouseDemand:
+def _fitted_demand(
+    mean, var, rate, lead_sd, short, long_, const, own_var, count, order_size
+) -> WarehouseDemand:
     """A site's lead-time demand by moments: negative binomial / Poisson pmf for counts, else normal."""
     n = mean.size
     width_need = _support_width(mean, var)
-    discrete = count & (width_need <= MAX_EXACT_SUPPORT)
+    discrete = count & (width_need <= MAX_FIT_SUPPORT)
     bucket = np.maximum(2 ** np.ceil(np.log2(np.maximum(width_need, 1))), MIN_WIDTH).astype(np.int64)
     tail = np.zeros(n)
     blocks = []
@@ -1405,16 +1751,27 @@ def _fitted_demand(mean, var, rate, lead_sd, short, long_, const, own_var, count
         keep = t <= TAIL_TOL
         blocks.append((idx[keep], pmf[keep]))
     discrete = discrete & (tail <= TAIL_TOL)
-    return WarehouseDemand(mean=mean, var=var, discrete=discrete, blocks=tuple(blocks), step=np.ones(n, np.int64),
-                           rate=rate, variance_rate=short.sum(axis=1) + own_var, tail=tail,
-                           method=np.where(discrete, 2, 0).astype(np.int8), lead_sd=lead_sd,
-                           stream_short=short, stream_long=long_, stream_const=const, own_var_rate=own_var,
-                           order_size=order_size)
+    return WarehouseDemand(
+        mean=mean,
+        var=var,
+        discrete=discrete,
+        blocks=tuple(blocks),
+        step=np.ones(n, np.int64),
+        rate=rate,
+        variance_rate=short.sum(axis=1) + own_var,
+        tail=tail,
+        method=np.where(discrete, 2, 0).astype(np.int8),
+        lead_sd=lead_sd,
+        stream_short=short,
+        stream_long=long_,
+        stream_const=const,
+        own_var_rate=own_var,
+        order_size=order_size,
+    )
 
 
 def _tree_pass(inp: TreeInputs, r: np.ndarray, q: np.ndarray, *, optimise_leaves: bool, refine: bool = False):
     """One evaluation of the whole tree (leaves evaluated or re-optimised for the delays they face)."""
-    from models import single_site as ss
 
     n, s_count = inp.active.shape
     act = inp.active
@@ -1452,15 +1809,31 @@ def _tree_pass(inp: TreeInputs, r: np.ndarray, q: np.ndarray, *, optimise_leaves
         const = np.where(on, np.where(cnt, (qc**2 - 1.0) / 6.0, qc**2 / 6.0), 0.0)
         return short, long_, const
 
-    out = {k: np.full((n, s_count), np.nan) for k in (
-        "safety_stock", "ltd_mean", "ltd_sd", "cycle_service", "fill_rate", "on_hand", "backorders",
-        "orders_per_year", "ordering_cost", "cycle_stock_cost", "safety_stock_cost", "backorder_cost",
-        "total_cost", "z")}
+    out = {
+        k: np.full((n, s_count), np.nan)
+        for k in (
+            "safety_stock",
+            "ltd_mean",
+            "ltd_sd",
+            "cycle_service",
+            "fill_rate",
+            "on_hand",
+            "backorders",
+            "orders_per_year",
+            "ordering_cost",
+            "cycle_stock_cost",
+            "safety_stock_cost",
+            "backorder_cost",
+            "total_cost",
+            "z",
+        )
+    }
     dist = np.full((n, s_count), -1, dtype=np.int64)
     note = np.zeros((n, s_count), dtype=np.int64)
     delay = np.zeros((n, s_count))
     delay_var = np.zeros((n, s_count))
     wait_p = np.zeros((n, s_count))
+    wait_cap = np.full((n, s_count), np.inf)
     r_out = np.where(act, r, np.nan)
     q_out = qv.copy()
     days = inp.days_per_year
@@ -1477,10 +1850,20 @@ def _tree_pass(inp: TreeInputs, r: np.ndarray, q: np.ndarray, *, optimise_leaves
         cs = children[s]
         on = act[:, cs] & (rate[:, cs] > 0)
         qcs = np.where(on & np.isfinite(qv[:, cs]), qv[:, cs], 1.0)
-        osize = (np.where(on, rate[:, cs] * qcs, 0.0).sum(axis=1) + np.where(act[:, s], inp.mean[:, s], 0.0))
+        osize = np.where(on, rate[:, cs] * qcs, 0.0).sum(axis=1) + np.where(act[:, s], inp.mean[:, s], 0.0)
         osize = np.where(rate[:, s] > 0, osize / np.where(rate[:, s] > 0, rate[:, s], 1.0), 1.0)
-        demand = _fitted_demand(mean, var, rate[:, s], np.sqrt(inp.lead_sd[:, s] ** 2 + vw_p), short, long_,
-                                const, np.where(act[:, s], inp.sd[:, s] ** 2, 0.0), inp.count[:, s], osize)
+        demand = _fitted_demand(
+            mean,
+            var,
+            rate[:, s],
+            np.sqrt(inp.lead_sd[:, s] ** 2 + vw_p),
+            short,
+            long_,
+            const,
+            np.where(act[:, s], inp.sd[:, s] ** 2, 0.0),
+            inp.count[:, s],
+            osize,
+        )
         rs = np.where(rows, r[:, s], 0.0)
         qs = np.where(rows & np.isfinite(qv[:, s]), qv[:, s], 1.0)
         state = warehouse_moments(demand, rs, qs)
@@ -1489,6 +1872,7 @@ def _tree_pass(inp: TreeInputs, r: np.ndarray, q: np.ndarray, *, optimise_leaves
             delay[:, c] = np.where(act[:, c], ew, 0.0)
             delay_var[:, c] = np.where(act[:, c], vw, 0.0)
             wait_p[:, c] = np.where(act[:, c], state.wait_probability, 0.0)
+            wait_cap[:, c] = state.max_wait
         sd0 = np.sqrt(np.maximum(var, 0.0))
         own_share = np.where(rate[:, s] > 0, inp.mean[:, s] / np.where(rate[:, s] > 0, rate[:, s], 1.0), 0.0)
         ordering = inp.order_cost[:, s] * rate[:, s] * days / qs
@@ -1503,45 +1887,102 @@ def _tree_pass(inp: TreeInputs, r: np.ndarray, q: np.ndarray, *, optimise_leaves
         for rws, pmf in demand.blocks:
             cdf = np.cumsum(pmf, axis=1)
             k = np.clip(np.rint(rs[rws]).astype(np.int64), -1, cdf.shape[1] - 1)
-            cdf_r[rws] = np.where(k < 0, 0.0, np.take_along_axis(cdf, np.maximum(k, 0)[:, None], axis=1)[:, 0])
-        vals = {"safety_stock": rs - mean, "ltd_mean": mean, "ltd_sd": sd0, "cycle_service": cdf_r,
-                "fill_rate": fill, "on_hand": state.expected_on_hand, "backorders": state.expected_backorders,
-                "orders_per_year": rate[:, s] * days / qs, "ordering_cost": ordering, "cycle_stock_cost": cycle,
-                "safety_stock_cost": holding - cycle, "backorder_cost": back,
-                "total_cost": ordering + holding + back,
-                "z": np.where(sd0 > 0, (rs - mean) / np.where(sd0 > 0, sd0, 1.0), np.nan)}
+            cdf_r[rws] = np.where(
+                k < 0, 0.0, np.take_along_axis(cdf, np.maximum(k, 0)[:, None], axis=1)[:, 0]
+            )
+        vals = {
+            "safety_stock": rs - mean,
+            "ltd_mean": mean,
+            "ltd_sd": sd0,
+            "cycle_service": cdf_r,
+            "fill_rate": fill,
+            "on_hand": state.expected_on_hand,
+            "backorders": state.expected_backorders,
+            "orders_per_year": rate[:, s] * days / qs,
+            "ordering_cost": ordering,
+            "cycle_stock_cost": cycle,
+            "safety_stock_cost": holding - cycle,
+            "backorder_cost": back,
+            "total_cost": ordering + holding + back,
+            "z": np.where(sd0 > 0, (rs - mean) / np.where(sd0 > 0, sd0, 1.0), np.nan),
+        }
         for k, v in vals.items():
             out[k][:, s] = np.where(rows, v, out[k][:, s])
         dist[:, s] = np.where(rows, np.where(demand.discrete, 1, 0), dist[:, s])
     # leaves: the single-site functions with the delay they face
-    args = (inp.mean[leaf] * days, inp.mean[leaf], inp.sd[leaf], inp.lead[leaf], inp.lead_sd[leaf],
-            inp.count[leaf], inp.order_cost[leaf], inp.holding_cost[leaf], inp.backorder_cost[leaf],
-            inp.target[leaf])
+    args = (
+        inp.mean[leaf] * days,
+        inp.mean[leaf],
+        inp.sd[leaf],
+        inp.lead[leaf],
+        inp.lead_sd[leaf],
+        inp.count[leaf],
+        inp.order_cost[leaf],
+        inp.holding_cost[leaf],
+        inp.backorder_cost[leaf],
+        inp.target[leaf],
+    )
     if optimise_leaves:
-        pol, lm, lsd, codes = leaf_policies(*args, qv[leaf], inp.pack[leaf], delay[leaf], delay_var[leaf],
-                                            wait_p[leaf], mode=inp.mode, basis=inp.backorder_basis,
-                                            refine=refine)
+        pol, lm, lsd, codes = leaf_policies(
+            *args,
+            qv[leaf],
+            inp.pack[leaf],
+            delay[leaf],
+            delay_var[leaf],
+            wait_p[leaf],
+            mode=inp.mode,
+            basis=inp.backorder_basis,
+            refine=refine,
+            max_wait=wait_cap[leaf],
+        )
     else:
-        pol, lm, lsd, codes = leaf_policies(*args, np.where(np.isfinite(qv[leaf]), qv[leaf], 0.0), inp.pack[leaf],
-                                            delay[leaf], delay_var[leaf], wait_p[leaf], mode=inp.mode,
-                                            basis=inp.backorder_basis,
-                                            reorder_point=np.where(np.isfinite(r_out[leaf]), r_out[leaf], 0.0))
+        pol, lm, lsd, codes = leaf_policies(
+            *args,
+            np.where(np.isfinite(qv[leaf]), qv[leaf], 0.0),
+            inp.pack[leaf],
+            delay[leaf],
+            delay_var[leaf],
+            wait_p[leaf],
+            mode=inp.mode,
+            basis=inp.backorder_basis,
+            max_wait=wait_cap[leaf],
+            reorder_point=np.where(np.isfinite(r_out[leaf]), r_out[leaf], 0.0),
+        )
     r_out[leaf] = pol.reorder_point
     q_out[leaf] = pol.order_quantity
     out["ltd_mean"][leaf] = lm
     out["ltd_sd"][leaf] = lsd
-    for k, f in (("safety_stock", "safety_stock"), ("cycle_service", "cycle_service"), ("fill_rate", "fill_rate"),
-                 ("on_hand", "expected_on_hand"), ("backorders", "expected_backorders"),
-                 ("orders_per_year", "orders_per_year"), ("ordering_cost", "ordering_cost"),
-                 ("cycle_stock_cost", "cycle_stock_cost"), ("safety_stock_cost", "safety_stock_cost"),
-                 ("backorder_cost", "backorder_cost"), ("total_cost", "total_cost"), ("z", "z")):
+    for k, f in (
+        ("safety_stock", "safety_stock"),
+        ("cycle_service", "cycle_service"),
+        ("fill_rate", "fill_rate"),
+        ("on_hand", "expected_on_hand"),
+        ("backorders", "expected_backorders"),
+        ("orders_per_year", "orders_per_year"),
+        ("ordering_cost", "ordering_cost"),
+        ("cycle_stock_cost", "cycle_stock_cost"),
+        ("safety_stock_cost", "safety_stock_cost"),
+        ("backorder_cost", "backorder_cost"),
+        ("total_cost", "total_cost"),
+        ("z", "z"),
+    ):
         out[k][leaf] = np.asarray(getattr(pol, f), dtype=float)
     dist[leaf] = codes
     note[leaf] = np.asarray(pol.note).astype(np.int64)
     cost = np.nansum(np.where(act, out["total_cost"], 0.0), axis=1)
-    return TreeResult(reorder_point=r_out, order_quantity=q_out, distribution=dist, note=note, delay=delay,
-                      delay_var=delay_var, leaf=leaf, network_cost=cost, iterations=np.zeros(n, np.int64),
-                      converged=np.ones(n, dtype=bool), **out)
+    return TreeResult(
+        reorder_point=r_out,
+        order_quantity=q_out,
+        distribution=dist,
+        note=note,
+        delay=delay,
+        delay_var=delay_var,
+        leaf=leaf,
+        network_cost=cost,
+        iterations=np.zeros(n, np.int64),
+        converged=np.ones(n, dtype=bool),
+        **out,
+    )
 
 
 def evaluate_tree(inp: TreeInputs, reorder_point: np.ndarray, order_quantity: np.ndarray) -> TreeResult:
@@ -1564,18 +2005,24 @@ def evaluate_tree(inp: TreeInputs, reorder_point: np.ndarray, order_quantity: np
     -----
     Bottom-up, each slot's arriving demand is its own customers plus its children's order streams (rates add;
     the variance over a window ``w`` is ``sum_c Var(Q_c floor((D_c(w) + V_c) / Q_c))`` by
-    :func:`order_stream_variance`, recursively). Top-down, an internal slot faces lead time ``L_s + W_parent``;
+    :func:`order_stream_variance`, recursively). Top-down, an internal slot faces lead time ``L_s +
+    W_parent``;
     its lead-time demand (mean ``lambda_s (L_s + E W)``, variance ``V_s(L_s + E W) + lambda_s**2 (sL**2 +
     Var W)``) is fitted (negative binomial / normal), its state gives the delay moments of its children
     (:func:`delay_moments`); leaves use the single-site functions. For two levels
     :func:`evaluate_two_level` uses the exact convolution at the root instead.
     """
-    return _tree_pass(inp, np.asarray(reorder_point, dtype=float), np.asarray(order_quantity, dtype=float),
-                      optimise_leaves=False)
+    return _tree_pass(
+        inp,
+        np.asarray(reorder_point, dtype=float),
+        np.asarray(order_quantity, dtype=float),
+        optimise_leaves=False,
+    )
 
 
-def optimise_tree(inp: TreeInputs, *, points: int = SEARCH_POINTS, rounds: int = SEARCH_ROUNDS
-                  ) -> tuple[TreeResult, TreeResult]:
+def optimise_tree(
+    inp: TreeInputs, *, points: int = SEARCH_POINTS, rounds: int = SEARCH_ROUNDS
+) -> tuple[TreeResult, TreeResult]:
     """Plan a site tree of any depth: single-site seeds, then each internal level's reorder points searched.
 
     Parameters
@@ -1598,7 +2045,8 @@ def optimise_tree(inp: TreeInputs, *, points: int = SEARCH_POINTS, rounds: int =
     Seeds: every site planned alone (leaves on their transit time; an internal site on the demand passing
     through it, with its own backorder cost or target, else the demand-weighted mean of its leaves'). Order
     quantities stay as seeded. Then internal slots are taken deepest level first, then up to the root; for
-    each slot the reorder point runs over a bracketing grid (vectorised over items) with every leaf re-optimised
+    each slot the reorder point runs over a bracketing grid (vectorised over items) with every leaf
+    re-optimised
     for the resulting delays and the other internal slots fixed, minimising the network cost per item.
     """
     from models import single_site as ss
@@ -1625,10 +2073,20 @@ def optimise_tree(inp: TreeInputs, *, points: int = SEARCH_POINTS, rounds: int =
     ltd_v = var_rate * inp.lead + rate**2 * inp.lead_sd**2
     ltd_s = np.sqrt(np.maximum(ltd_v, 0.0))
     codes = _store_codes(inp.count[act], ltd_m[act], ltd_s[act])
-    pol = ss.optimise_policy(rate[act] * days, ltd_m[act], ltd_s[act], inp.order_cost[act], inp.holding_cost[act],
-                             distribution=codes, mode=inp.mode, backorder_cost=back[act],
-                             backorder_basis=inp.backorder_basis, target=target[act], order_quantity=inp.fixed_q[act],
-                             pack_size=inp.pack[act])
+    pol = ss.optimise_policy(
+        rate[act] * days,
+        ltd_m[act],
+        ltd_s[act],
+        inp.order_cost[act],
+        inp.holding_cost[act],
+        distribution=codes,
+        mode=inp.mode,
+        backorder_cost=back[act],
+        backorder_basis=inp.backorder_basis,
+        target=target[act],
+        order_quantity=inp.fixed_q[act],
+        pack_size=inp.pack[act],
+    )
     q = np.full((n, s_count), np.nan)
     r = np.zeros((n, s_count))
     qseed = np.asarray(pol.order_quantity, dtype=float)
@@ -1685,17 +2143,34 @@ def optimise_tree(inp: TreeInputs, *, points: int = SEARCH_POINTS, rounds: int =
 # ----------------------------------------------------------------------------------------------------------
 # sites facing a random delay: the delay as a three-point mixture
 # ----------------------------------------------------------------------------------------------------------
+_SKEW = 1.0
 #: Iterations of the final reorder-point refinement of stores under the delay mixture.
-REFINE_ITER = 40
+REFINE_ITER = 6
+#: Newton steps of the cost refinement and their finite-difference step (in lead-time-demand sds).
+REFINE_NEWTON = 2
+REFINE_STEP_SD = 0.25
 #: The refinement brackets the reorder point within these many lead-time-demand sds of the first guess.
-REFINE_LOW_SDS = 4.0
-REFINE_HIGH_SDS = 8.0
-_MIX_FIELDS = ("cycle_service", "fill_rate", "expected_on_hand", "expected_backorders", "safety_stock_cost",
-               "backorder_cost", "total_cost")
+REFINE_LOW_SDS = 2.0
+REFINE_HIGH_SDS = 4.0
+#: Wait points with less weight than this are not evaluated.
+MIX_MIN_WEIGHT = 1e-7
+_MIX_FIELDS = (
+    "cycle_service",
+    "fill_rate",
+    "expected_on_hand",
+    "expected_backorders",
+    "safety_stock_cost",
+    "backorder_cost",
+    "total_cost",
+)
 
 
-def wait_points(mean_delay: np.ndarray, var_delay: np.ndarray, wait_probability: np.ndarray
-                ) -> tuple[np.ndarray, np.ndarray]:
+def wait_points(
+    mean_delay: np.ndarray,
+    var_delay: np.ndarray,
+    wait_probability: np.ndarray,
+    max_wait: np.ndarray | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
     """Three-point distribution of the delay: no wait, and two points for the wait when there is one.
 
     Parameters
@@ -1704,6 +2179,8 @@ def wait_points(mean_delay: np.ndarray, var_delay: np.ndarray, wait_probability:
         ``E[W]``, ``Var(W)``.
     wait_probability : ndarray
         ``P(W > 0)``.
+    max_wait : ndarray, optional
+        Longest plausible wait; the upper point is kept below it (mean and variance kept where possible).
 
     Returns
     -------
@@ -1732,33 +2209,129 @@ def wait_points(mean_delay: np.ndarray, var_delay: np.ndarray, wait_probability:
     m = ew / ps
     v = np.maximum(ew2 / ps - m * m, 0.0)
     sd = np.sqrt(v)
-    g = np.where(m > 0, 2.0 * sd / np.where(m > 0, m, 1.0), 0.0)
+    g = np.where(m > 0, _SKEW * 2.0 * sd / np.where(m > 0, m, 1.0), 0.0)
+    g = np.maximum(g, np.where(sd > m, (sd * sd - m * m) / np.maximum(m * sd, 1e-300), 0.0))
     root = np.sqrt(g * g + 4.0)
     a, b = (g - root) / 2.0, (g + root) / 2.0
     pa, pb = b / (b - a), -a / (b - a)
-    points = np.stack([np.zeros_like(m), np.maximum(m + sd * a, 0.0), m + sd * b], axis=-1)
+    low, up = np.maximum(m + sd * a, 0.0), m + sd * b
+    if max_wait is not None:
+        cap = np.asarray(max_wait, dtype=float)
+        over = (up > cap) & (cap > m)
+        capped_low = np.maximum(m - v / np.where(over, cap - m, 1.0), 0.0)
+        p_up = np.where(over, (m - capped_low) / np.where(over, cap - capped_low, 1.0), pb)
+        low = np.where(over, capped_low, low)
+        up = np.where(over, cap, up)
+        pb = p_up
+        pa = 1.0 - p_up
+    points = np.stack([np.zeros_like(m), low, up], axis=-1)
     weights = np.stack([1.0 - p, p * pa, p * pb], axis=-1)
     return points, weights
 
 
-def _mix_eval(annual, dmean, dsd, lead, lead_sd, count, a, h, b, r, q, points, weights, basis):
-    """The single-site evaluation mixed over the delay points (every KPI here is linear in the distribution)."""
+def _by_code(fn, codes, *arrays, **kwargs):
+    """Call a single-site function separately on the negative binomial rows and the others.
+
+    (Its count kernels evaluate both special functions on every element when a call mixes the families.)
+    """
+    from models import demand as md
     from models import single_site as ss
 
-    pols = []
+    nb = codes == md.NEGBIN
+    if nb.all() or not nb.any():
+        return fn(*arrays, distribution=codes, **kwargs)
+    parts = [np.flatnonzero(nb), np.flatnonzero(~nb)]
+    kw = {k: v for k, v in kwargs.items()}
+    outs = []
+    for idx in parts:
+        sub_kw = {
+            k: (v[idx] if isinstance(v, np.ndarray) and v.shape == codes.shape else v) for k, v in kw.items()
+        }
+        outs.append(
+            fn(
+                *[a[idx] if isinstance(a, np.ndarray) and a.shape == codes.shape else a for a in arrays],
+                distribution=codes[idx],
+                **sub_kw,
+            )
+        )
+    fields = {}
+    for f in ss.SitePolicy.__dataclass_fields__:
+        v0 = np.asarray(getattr(outs[0], f))
+        full = np.empty(codes.shape, dtype=v0.dtype)
+        full[parts[0]] = v0
+        full[parts[1]] = np.asarray(getattr(outs[1], f))
+        fields[f] = full
+    return ss.SitePolicy(**fields)
+
+
+def _mix_eval(annual, dmean, dsd, lead, lead_sd, count, a, h, b, r, q, points, weights, basis):
+    """Single-site evaluation mixed over the delay points (each KPI here is linear in the distribution)."""
+    from models import single_site as ss
+
+    mixed = {f: np.zeros(np.shape(r)) for f in _MIX_FIELDS}
+    first = None
+    last = {f: np.zeros(np.shape(r)) for f in _MIX_FIELDS}
     for k in range(points.shape[-1]):
-        m, s = store_ltd_moments(dmean, dsd, lead, lead_sd, points[..., k], 0.0)
-        codes = _store_codes(count, m, s)
-        pols.append(ss.evaluate_policy(annual, m, s, a, h, r, q, distribution=codes, backorder_cost=b,
-                                       backorder_basis=basis))
-    mixed = {f: sum(weights[..., k] * np.asarray(getattr(pols[k], f), dtype=float) for k in range(len(pols)))
-             for f in _MIX_FIELDS}
-    return pols[0], mixed
+        if k == 2:  # the two wait points coincide where the conditional wait has no spread
+            same = np.abs(points[..., 2] - points[..., 1]) <= 1e-12 * np.maximum(points[..., 2], 1.0)
+            for f in _MIX_FIELDS:
+                mixed[f] += np.where(same, weights[..., 2] * last[f], 0.0)
+            sel = np.flatnonzero((weights[..., 2] > MIX_MIN_WEIGHT) & ~same)
+        else:
+            sel = np.arange(np.size(r)) if k == 0 else np.flatnonzero(weights[..., k] > MIX_MIN_WEIGHT)
+        if sel.size == 0:
+            last = {f: np.zeros(np.shape(r)) for f in _MIX_FIELDS}
+            continue
+        m, s = store_ltd_moments(dmean[sel], dsd[sel], lead[sel], lead_sd[sel], points[sel, k], 0.0)
+        codes = _store_codes(count[sel], m, s)
+        pol = _by_code(
+            ss.evaluate_policy,
+            codes,
+            annual[sel],
+            m,
+            s,
+            a[sel],
+            h[sel],
+            r[sel],
+            q[sel],
+            backorder_cost=b[sel],
+            backorder_basis=basis,
+        )
+        if k == 0:
+            first = pol
+        last = {}
+        for f in _MIX_FIELDS:
+            full = np.zeros(np.shape(r))
+            full[sel] = np.asarray(getattr(pol, f), dtype=float)
+            last[f] = full
+            mixed[f] += weights[..., k] * full
+    return first, mixed
 
 
-def leaf_policies(annual, dmean, dsd, lead, lead_sd, count, order_cost, holding_cost, backorder_cost, target,
-                  order_quantity, pack, mean_delay, var_delay, wait_probability, *, mode: str, basis: str,
-                  reorder_point=None, refine: bool = False):
+def leaf_policies(
+    annual,
+    dmean,
+    dsd,
+    lead,
+    lead_sd,
+    count,
+    order_cost,
+    holding_cost,
+    backorder_cost,
+    target,
+    order_quantity,
+    pack,
+    mean_delay,
+    var_delay,
+    wait_probability,
+    *,
+    mode: str,
+    basis: str,
+    reorder_point=None,
+    refine: bool = False,
+    mixture: bool = True,
+    max_wait=None,
+):
     """Evaluate or optimise sites that order from an upstream site with a random delay.
 
     Parameters
@@ -1773,8 +2346,11 @@ def leaf_policies(annual, dmean, dsd, lead, lead_sd, count, order_cost, holding_
         Planning mode and backorder-cost basis.
     reorder_point : ndarray (k,), optional
         Given: evaluate. None: optimise ``R`` (``Q`` as given or optimised on the moment fit).
+    mixture : bool
+        False: the two-moment fit only (fast; used inside searches).
     refine : bool
-        Re-optimise ``R`` under the delay mixture (cost: golden-section / integer search; service: the smallest
+        Re-optimise ``R`` under the delay mixture (cost: golden-section / integer search; service: the
+        smallest
         ``R`` meeting the target) starting from the moment-fit optimum.
 
     Returns
@@ -1794,7 +2370,8 @@ def leaf_policies(annual, dmean, dsd, lead, lead_sd, count, order_cost, holding_
     -----
     The lead-time demand is a mixture over the delay points ``w`` of demand over ``L + w``; each KPI is the
     weighted sum of the single-site KPIs (``models.single_site.evaluate_policy``). The two-moment version
-    (one negative binomial / normal with the variance ``s**2 (L + E W) + d**2 (sL**2 + Var W)``) has too thin a
+    (one negative binomial / normal with the variance ``s**2 (L + E W) + d**2 (sL**2 + Var W)``) has too thin
+    a
     tail when the warehouse is rarely out of stock but then for long; the mixture keeps the atom at no wait.
     """
     from dataclasses import replace
@@ -1803,73 +2380,148 @@ def leaf_policies(annual, dmean, dsd, lead, lead_sd, count, order_cost, holding_
 
     m, s = store_ltd_moments(dmean, dsd, lead, lead_sd, mean_delay, var_delay)
     codes = _store_codes(count, m, s)
-    points, weights = wait_points(mean_delay, var_delay, wait_probability)
+    points, weights = wait_points(mean_delay, var_delay, wait_probability, max_wait)
     if reorder_point is None:
-        base = ss.optimise_policy(annual, m, s, order_cost, holding_cost, distribution=codes, mode=mode,
-                                  backorder_cost=backorder_cost, backorder_basis=basis, target=target,
-                                  order_quantity=order_quantity, pack_size=pack)
+        base = _by_code(
+            ss.optimise_policy,
+            codes,
+            annual,
+            m,
+            s,
+            order_cost,
+            holding_cost,
+            mode=mode,
+            backorder_cost=backorder_cost,
+            backorder_basis=basis,
+            target=target,
+            order_quantity=order_quantity,
+            pack_size=pack,
+        )
         r = np.asarray(base.reorder_point, dtype=float)
     else:
         r = np.asarray(reorder_point, dtype=float)
         base = None
     q = np.asarray(base.order_quantity if base is not None else order_quantity, dtype=float)
     q = np.where(np.isfinite(q), q, 0.0)
+    if not mixture and base is not None:
+        return base, m, s, codes
     if refine and reorder_point is None:
-        r = _refine(annual, dmean, dsd, lead, lead_sd, count, order_cost, holding_cost, backorder_cost, target,
-                    q, points, weights, mode, basis, r, s, annual > 0)
-    first, mixed = _mix_eval(annual, dmean, dsd, lead, lead_sd, count, order_cost, holding_cost, backorder_cost,
-                             r, q, points, weights, basis)
-    fit = ss.evaluate_policy(annual, m, s, order_cost, holding_cost, r, q, distribution=codes,
-                             backorder_cost=backorder_cost, backorder_basis=basis)
+        r = _refine(
+            annual,
+            dmean,
+            dsd,
+            lead,
+            lead_sd,
+            count,
+            order_cost,
+            holding_cost,
+            backorder_cost,
+            target,
+            q,
+            points,
+            weights,
+            mode,
+            basis,
+            r,
+            s,
+            annual > 0,
+        )
+    first, mixed = _mix_eval(
+        annual,
+        dmean,
+        dsd,
+        lead,
+        lead_sd,
+        count,
+        order_cost,
+        holding_cost,
+        backorder_cost,
+        r,
+        q,
+        points,
+        weights,
+        basis,
+    )
+    fit = _by_code(
+        ss.evaluate_policy,
+        codes,
+        annual,
+        m,
+        s,
+        order_cost,
+        holding_cost,
+        r,
+        q,
+        backorder_cost=backorder_cost,
+        backorder_basis=basis,
+    )
     policy = replace(fit, **mixed)
     if base is not None:
         policy = replace(policy, iterations=base.iterations, converged=base.converged, note=base.note)
     return policy, m, s, codes
 
 
-def _refine(annual, dmean, dsd, lead, lead_sd, count, a, h, b, target, q, points, weights, mode, basis, r0, sd,
-            live):
-    """Reorder points under the mixture, vectorised: bisection (service) or golden section (cost)."""
+def _refine(
+    annual, dmean, dsd, lead, lead_sd, count, a, h, b, target, q, points, weights, mode, basis, r0, sd, live
+):
+    """Reorder points under the mixture, from the two-moment optimum ``r0``, vectorised.
+
+    Service modes: secant steps on the service measure towards the target, then upward steps until it is met.
+    Cost mode: Newton steps on finite differences of the mixed cost (step ``REFINE_STEP_SD`` sd, one unit for
+    counts), each kept only where it lowers the cost.
+    """
 
     def kpi(r):
         _, mixed = _mix_eval(annual, dmean, dsd, lead, lead_sd, count, a, h, b, r, q, points, weights, basis)
         return mixed
 
     width = np.maximum(sd, 1.0)
+    delta = np.where(count, np.maximum(np.rint(REFINE_STEP_SD * width), 1.0), REFINE_STEP_SD * width)
     lo = r0 - REFINE_LOW_SDS * width
     hi = r0 + REFINE_HIGH_SDS * width
-    if count.any():
-        lo = np.where(count, np.floor(lo), lo)
-        hi = np.where(count, np.ceil(hi), hi)
+
+    def snap(x, up=False):
+        x = np.clip(x, lo, hi)
+        return np.where(count, np.ceil(x - 1e-9) if up else np.rint(x), x)
+
     if mode in ("fill_rate", "cycle_service"):
-        t = np.where(np.isfinite(target), target, 0.0)
         field = "fill_rate" if mode == "fill_rate" else "cycle_service"
-        ok_hi = kpi(hi)[field] >= t
+        t = np.where(np.isfinite(target), target, 0.0)
+        x0, k0 = r0, kpi(r0)[field]
+        x1 = snap(r0 + np.where(k0 < t, delta, -delta))
+        k1 = kpi(x1)[field]
         for _ in range(REFINE_ITER):
-            mid = np.where(count, np.floor((lo + hi) / 2.0), (lo + hi) / 2.0)
-            good = kpi(mid)[field] >= t
-            hi = np.where(good, mid, hi)
-            lo = np.where(good, lo, mid)
-            if np.all(np.where(count, hi - lo <= 1.0, hi - lo <= 1e-4 * width)):
+            slope = (k1 - k0) / np.where(x1 != x0, x1 - x0, 1.0)
+            ok = np.abs(slope) > 1e-12
+            x2 = snap(np.where(ok, x1 + (t - k1) / np.where(ok, slope, 1.0), x1 + delta), up=True)
+            if np.all(x2 == x1):
                 break
-        out = np.where(ok_hi, hi, r0)
-        return np.where(live, np.where(np.isfinite(target), out, r0), r0)
-    # cost: golden section on the continuous items, integer ternary search on the counts
-    gr = (np.sqrt(5.0) - 1.0) / 2.0
-    for _ in range(REFINE_ITER):
-        x1 = hi - gr * (hi - lo)
-        x2 = lo + gr * (hi - lo)
-        x1 = np.where(count, np.floor(x1), x1)
-        x2 = np.where(count, np.maximum(np.ceil(x2), x1 + 1.0), x2)
-        c1 = kpi(x1)["total_cost"]
-        c2 = kpi(x2)["total_cost"]
-        left = c1 <= c2
-        hi = np.where(left, x2, hi)
-        lo = np.where(left, lo, x1)
-        if np.all(np.where(count, hi - lo <= 2.0, hi - lo <= 1e-4 * width)):
-            break
-    cand = [lo, hi, (lo + hi) / 2.0 if True else None, r0]
-    cand[2] = np.where(count, np.floor(cand[2]), cand[2])
-    costs = np.stack([kpi(c)["total_cost"] for c in cand], axis=0)
-    best = np.stack(cand, axis=0)[np.argmin(costs, axis=0), np.arange(r0.size)]
+            x0, k0, x1 = x1, k1, x2
+            k1 = kpi(x1)[field]
+        r = x1
+        for _ in range(REFINE_ITER):  # feasibility: step up where the target is still missed
+            miss = (k1 < t - 1e-12) & live & np.isfinite(target) & (r < hi)
+            if not np.any(miss):
+                break
+            r = np.where(miss, snap(r + delta, up=True), r)
+            k1 = np.where(miss, kpi(r)[field], k1)
+        return np.where(live & np.isfinite(target), r, r0)
+    best = r0.copy()
+    best_c = kpi(r0)["total_cost"]
+    x = r0
+    cx = best_c
+    for _ in range(REFINE_NEWTON):
+        cm = kpi(snap(x - delta))["total_cost"]
+        cp = kpi(snap(x + delta))["total_cost"]
+        d1 = (cp - cm) / (2.0 * delta)
+        d2 = (cp - 2.0 * cx + cm) / (delta * delta)
+        step = np.where(d2 > 0, -d1 / np.where(d2 > 0, d2, 1.0), np.where(cp < cm, delta, -delta))
+        for xx, cc in ((snap(x - delta), cm), (snap(x + delta), cp)):
+            take = cc < best_c
+            best, best_c = np.where(take, xx, best), np.where(take, cc, best_c)
+        x = snap(x + np.clip(step, -REFINE_LOW_SDS * width, REFINE_HIGH_SDS * width))
+        cx = kpi(x)["total_cost"]
+        take = cx < best_c
+        best, best_c = np.where(take, x, best), np.where(take, cx, best_c)
+        x, cx = best, best_c
     return np.where(live, best, r0)

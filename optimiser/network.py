@@ -1,14 +1,17 @@
 """The site forest and network planning: a warehouse and the stores it supplies, planned together.
 
-* :func:`build_forest` / :func:`forest_from_itemsites` check that the supply links form a forest fed by suppliers
+* :func:`build_forest` / :func:`forest_from_itemsites` check that the supply links form a forest fed by
+suppliers
   (every chain of upstream sites ends at a site with no upstream) and give levels (roots first), children and
   depth. Errors are :class:`~optimiser.errors.CaseError` naming the sites.
 * :func:`plan_network` plans every item of a case with upstream sites: single-site seeds, then the warehouse
   reorder point searched with the stores' reorder points re-optimised for each candidate
-  (:func:`models.echelon.optimise_two_level`). Trees deeper than two levels are planned level by level with the
+  (:func:`models.echelon.optimise_two_level`). Trees deeper than two levels are planned level by level with
+  the
   same step (:func:`models.echelon.optimise_tree`).
 * :func:`evaluate_network` evaluates given policies the same way.
-* :func:`network_summary` (also returned by ``plan_network(..., return_summary=True)``): per item and root site,
+* :func:`network_summary` (also returned by ``plan_network(..., return_summary=True)``): per item and root
+site,
   how safety stock splits between the warehouse and the stores, and what the network plan saves against
   planning each site alone.
 
@@ -18,6 +21,7 @@ The policies frame has the columns of ``policies.csv`` (DEVELOPERS.md); stores c
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass, field
 
 import networkx as nx
@@ -132,8 +136,13 @@ def build_forest(sites, upstream, *, file: str = "sites.csv") -> SiteForest:
     parent: dict[str, str] = {}
     for s, u in zip(names, ups, strict=True):
         if s in parent and parent[s] != u:
-            raise CaseError(file, f"site {s!r} is supplied by two sites ({parent[s]!r} and {u!r}); "
-                            "each site must have one upstream", column="upstream", value=u)
+            raise CaseError(
+                file,
+                f"site {s!r} is supplied by two sites ({parent[s]!r} and {u!r}); "
+                "each site must have one upstream",
+                column="upstream",
+                value=u,
+            )
         parent[s] = u
     graph = nx.DiGraph()
     graph.add_nodes_from(parent)
@@ -143,7 +152,9 @@ def build_forest(sites, upstream, *, file: str = "sites.csv") -> SiteForest:
         if u == s:
             raise CaseError(file, f"site {s!r} is its own upstream", column="upstream", value=u)
         if u not in parent:
-            raise CaseError(file, f"site {s!r} has an unknown upstream site {u!r}", column="upstream", value=u)
+            raise CaseError(
+                file, f"site {s!r} has an unknown upstream site {u!r}", column="upstream", value=u
+            )
         graph.add_edge(u, s)
     try:
         cycle = nx.find_cycle(graph)
@@ -151,9 +162,13 @@ def build_forest(sites, upstream, *, file: str = "sites.csv") -> SiteForest:
         cycle = None
     if cycle:
         loop = [e[0] for e in cycle]
-        raise CaseError(file, "the supply links form a cycle: " + " -> ".join(loop + [loop[0]])
-                        + " (every chain of upstream sites must end at a site fed by a supplier)",
-                        column="upstream")
+        raise CaseError(
+            file,
+            "the supply links form a cycle: "
+            + " -> ".join(loop + [loop[0]])
+            + " (every chain of upstream sites must end at a site fed by a supplier)",
+            column="upstream",
+        )
     levels: list[list[str]] = []
     current = sorted(s for s, u in parent.items() if not u)
     while current:
@@ -176,11 +191,18 @@ def forest_from_itemsites(itemsites: pd.DataFrame) -> SiteForest:
     below = itemsites.loc[up != "", ["site", "item", "upstream"]]
     if len(below):
         stocked = set(zip(itemsites["site"].astype(str), itemsites["item"].astype(str), strict=True))
-        missing = [(s, i, u) for s, i, u in below.astype(str).itertuples(index=False) if (u, i) not in stocked]
+        missing = [
+            (s, i, u) for s, i, u in below.astype(str).itertuples(index=False) if (u, i) not in stocked
+        ]
         if missing:
             s, i, u = missing[0]
-            raise CaseError("stocking.csv", f"item {i!r} is stocked at {s!r} but not at its upstream site {u!r} "
-                            f"({len(missing)} such item-site(s))", column="site", value=s)
+            raise CaseError(
+                "stocking.csv",
+                f"item {i!r} is stocked at {s!r} but not at its upstream site {u!r} "
+                f"({len(missing)} such item-site(s))",
+                column="site",
+                value=s,
+            )
     return forest
 
 
@@ -189,10 +211,10 @@ def forest_from_itemsites(itemsites: pd.DataFrame) -> SiteForest:
 class _Block:
     """Item-sites of one tree shape arranged as arrays: ``n`` (item, root) trees x ``S`` sites."""
 
-    rows: np.ndarray          # (n, S) row index into the item-site table, -1 where not stocked
-    parent: np.ndarray        # (S,) parent slot, -1 for the root
+    rows: np.ndarray  # (n, S) row index into the item-site table, -1 where not stocked
+    parent: np.ndarray  # (S,) parent slot, -1 for the root
     sites: list[str]
-    items: np.ndarray         # (n,) item names
+    items: np.ndarray  # (n,) item names
     root: str
 
 
@@ -284,8 +306,9 @@ def _two_level_inputs(table: pd.DataFrame, rows: np.ndarray, settings) -> ech.Tw
     )
 
 
-def _frame_two_level(table: pd.DataFrame, rows: np.ndarray, res: ech.TwoLevelResult,
-                     inp: ech.TwoLevelInputs) -> pd.DataFrame:
+def _frame_two_level(
+    table: pd.DataFrame, rows: np.ndarray, res: ech.TwoLevelResult, inp: ech.TwoLevelInputs
+) -> pd.DataFrame:
     """Policies frame rows (warehouses then stores) of a two-level result."""
     n = rows.shape[0]
     wh = rows[:, 0]
@@ -304,59 +327,63 @@ def _frame_two_level(table: pd.DataFrame, rows: np.ndarray, res: ech.TwoLevelRes
     del lam0
     total0 = res.warehouse_ordering_cost + res.warehouse_holding_cost + res.warehouse_backorder_cost
     code = table["distribution"].to_numpy(dtype=np.int64)
-    warehouse = pd.DataFrame({
-        "site": table["site"].to_numpy(dtype=object)[wh],
-        "item": table["item"].to_numpy(dtype=object)[wh],
-        "order_quantity": q0,
-        "reorder_point": res.warehouse_reorder_point,
-        "safety_stock": ss0,
-        "lead_time_days": inp.warehouse_lead,
-        "lead_time_demand_mean": res.warehouse_ltd_mean,
-        "lead_time_demand_sd": sd0,
-        "cycle_service": res.warehouse_cycle_service,
-        "fill_rate": res.warehouse_fill_rate,
-        "expected_on_hand": res.warehouse_on_hand,
-        "expected_backorders": res.warehouse_backorders,
-        "orders_per_year": np.where(q0 > 0, through / np.maximum(q0, 1e-12), 0.0),
-        "ordering_cost": res.warehouse_ordering_cost,
-        "holding_cost": res.warehouse_holding_cost,
-        "backorder_cost": res.warehouse_backorder_cost,
-        "total_cost": total0,
-        "cycle_stock_cost": cycle0,
-        "safety_stock_cost": res.warehouse_holding_cost - cycle0,
-        "z": z0,
-        "distribution": code[wh].astype(np.int8),
-        "expected_delay_days": np.zeros(n),
-        "note": np.zeros(n, dtype=np.int64),
-    })
+    warehouse = pd.DataFrame(
+        {
+            "site": table["site"].to_numpy(dtype=object)[wh],
+            "item": table["item"].to_numpy(dtype=object)[wh],
+            "order_quantity": q0,
+            "reorder_point": res.warehouse_reorder_point,
+            "safety_stock": ss0,
+            "lead_time_days": inp.warehouse_lead,
+            "lead_time_demand_mean": res.warehouse_ltd_mean,
+            "lead_time_demand_sd": sd0,
+            "cycle_service": res.warehouse_cycle_service,
+            "fill_rate": res.warehouse_fill_rate,
+            "expected_on_hand": res.warehouse_on_hand,
+            "expected_backorders": res.warehouse_backorders,
+            "orders_per_year": np.where(q0 > 0, through / np.maximum(q0, 1e-12), 0.0),
+            "ordering_cost": res.warehouse_ordering_cost,
+            "holding_cost": res.warehouse_holding_cost,
+            "backorder_cost": res.warehouse_backorder_cost,
+            "total_cost": total0,
+            "cycle_stock_cost": cycle0,
+            "safety_stock_cost": res.warehouse_holding_cost - cycle0,
+            "z": z0,
+            "distribution": code[wh].astype(np.int8),
+            "expected_delay_days": np.zeros(n),
+            "note": np.zeros(n, dtype=np.int64),
+        }
+    )
     item_of_store = np.nonzero(act)[0]
     cyc = np.asarray(pol.cycle_stock_cost, dtype=float)
     saf = np.asarray(pol.safety_stock_cost, dtype=float)
-    stores = pd.DataFrame({
-        "site": table["site"].to_numpy(dtype=object)[st_rows],
-        "item": table["item"].to_numpy(dtype=object)[st_rows],
-        "order_quantity": np.asarray(pol.order_quantity, dtype=float),
-        "reorder_point": np.asarray(pol.reorder_point, dtype=float),
-        "safety_stock": np.asarray(pol.safety_stock, dtype=float),
-        "lead_time_days": inp.store_lead[act] + res.mean_delay[item_of_store],
-        "lead_time_demand_mean": res.store_ltd_mean[act],
-        "lead_time_demand_sd": res.store_ltd_sd[act],
-        "cycle_service": np.asarray(pol.cycle_service, dtype=float),
-        "fill_rate": np.asarray(pol.fill_rate, dtype=float),
-        "expected_on_hand": np.asarray(pol.expected_on_hand, dtype=float),
-        "expected_backorders": np.asarray(pol.expected_backorders, dtype=float),
-        "orders_per_year": np.asarray(pol.orders_per_year, dtype=float),
-        "ordering_cost": np.asarray(pol.ordering_cost, dtype=float),
-        "holding_cost": cyc + saf,
-        "backorder_cost": np.asarray(pol.backorder_cost, dtype=float),
-        "total_cost": np.asarray(pol.total_cost, dtype=float),
-        "cycle_stock_cost": cyc,
-        "safety_stock_cost": saf,
-        "z": np.asarray(pol.z, dtype=float),
-        "distribution": code[st_rows].astype(np.int8),
-        "expected_delay_days": res.mean_delay[item_of_store],
-        "note": np.asarray(pol.note).astype(np.int64),
-    })
+    stores = pd.DataFrame(
+        {
+            "site": table["site"].to_numpy(dtype=object)[st_rows],
+            "item": table["item"].to_numpy(dtype=object)[st_rows],
+            "order_quantity": np.asarray(pol.order_quantity, dtype=float),
+            "reorder_point": np.asarray(pol.reorder_point, dtype=float),
+            "safety_stock": np.asarray(pol.safety_stock, dtype=float),
+            "lead_time_days": inp.store_lead[act] + res.mean_delay[item_of_store],
+            "lead_time_demand_mean": res.store_ltd_mean[act],
+            "lead_time_demand_sd": res.store_ltd_sd[act],
+            "cycle_service": np.asarray(pol.cycle_service, dtype=float),
+            "fill_rate": np.asarray(pol.fill_rate, dtype=float),
+            "expected_on_hand": np.asarray(pol.expected_on_hand, dtype=float),
+            "expected_backorders": np.asarray(pol.expected_backorders, dtype=float),
+            "orders_per_year": np.asarray(pol.orders_per_year, dtype=float),
+            "ordering_cost": np.asarray(pol.ordering_cost, dtype=float),
+            "holding_cost": cyc + saf,
+            "backorder_cost": np.asarray(pol.backorder_cost, dtype=float),
+            "total_cost": np.asarray(pol.total_cost, dtype=float),
+            "cycle_stock_cost": cyc,
+            "safety_stock_cost": saf,
+            "z": np.asarray(pol.z, dtype=float),
+            "distribution": code[st_rows].astype(np.int8),
+            "expected_delay_days": res.mean_delay[item_of_store],
+            "note": np.asarray(pol.note).astype(np.int64),
+        }
+    )
     return pd.concat([warehouse, stores], ignore_index=True)[POLICY_COLUMNS]
 
 
@@ -364,8 +391,9 @@ def _summary_two_level(table, rows, res, seed, inp, root, seed_nominal) -> pd.Da
     act = inp.store_active
     item_of_store = np.nonzero(act)[0]
     n = rows.shape[0]
-    ss_st = np.bincount(item_of_store, weights=np.asarray(res.store_policy.safety_stock, dtype=float),
-                        minlength=n)
+    ss_st = np.bincount(
+        item_of_store, weights=np.asarray(res.store_policy.safety_stock, dtype=float), minlength=n
+    )
     ss_wh = res.warehouse_reorder_point - res.warehouse_ltd_mean
     tot = ss_wh + ss_st
     demand = inp.store_mean[act]
@@ -376,24 +404,29 @@ def _summary_two_level(table, rows, res, seed, inp, root, seed_nominal) -> pd.Da
         return np.bincount(item_of_store, weights=f * demand, minlength=n) / np.where(w > 0, w, 1.0)
 
     savings = seed.network_cost - res.network_cost
-    return pd.DataFrame({
-        "root": root,
-        "item": table["item"].to_numpy(dtype=object)[rows[:, 0]],
-        "stores": act.sum(axis=1),
-        "warehouse_safety_stock": ss_wh,
-        "stores_safety_stock": ss_st,
-        "warehouse_share": np.where(np.abs(tot) > 0, ss_wh / np.where(np.abs(tot) > 0, tot, 1.0), np.nan),
-        "network_cost": res.network_cost,
-        "single_site_cost": seed_nominal,
-        "single_site_network_cost": seed.network_cost,
-        "savings": savings,
-        "savings_pct": np.where(seed.network_cost > 0, 100.0 * savings / np.where(
-            seed.network_cost > 0, seed.network_cost, 1.0), np.nan),
-        "mean_delay_days": res.mean_delay,
-        "single_site_mean_delay_days": seed.mean_delay,
-        "store_fill_rate": fill(res),
-        "single_site_store_fill_rate": fill(seed),
-    })[SUMMARY_COLUMNS]
+    return pd.DataFrame(
+        {
+            "root": root,
+            "item": table["item"].to_numpy(dtype=object)[rows[:, 0]],
+            "stores": act.sum(axis=1),
+            "warehouse_safety_stock": ss_wh,
+            "stores_safety_stock": ss_st,
+            "warehouse_share": np.where(np.abs(tot) > 0, ss_wh / np.where(np.abs(tot) > 0, tot, 1.0), np.nan),
+            "network_cost": res.network_cost,
+            "single_site_cost": seed_nominal,
+            "single_site_network_cost": seed.network_cost,
+            "savings": savings,
+            "savings_pct": np.where(
+                seed.network_cost > 0,
+                100.0 * savings / np.where(seed.network_cost > 0, seed.network_cost, 1.0),
+                np.nan,
+            ),
+            "mean_delay_days": res.mean_delay,
+            "single_site_mean_delay_days": seed.mean_delay,
+            "store_fill_rate": fill(res),
+            "single_site_store_fill_rate": fill(seed),
+        }
+    )[SUMMARY_COLUMNS]
 
 
 def _single_site_frame(table: pd.DataFrame, settings) -> pd.DataFrame:
@@ -450,8 +483,12 @@ def evaluate_network(itemsites: pd.DataFrame, policies: pd.DataFrame, settings) 
     key = itemsites[["site", "item"]].astype(str).merge(given, on=["site", "item"], how="left")
     if key["reorder_point"].isna().any() or key["order_quantity"].isna().any():
         bad = key[key["reorder_point"].isna() | key["order_quantity"].isna()].iloc[0]
-        raise CaseError("policies.csv", f"no policy for site {bad['site']!r}, item {bad['item']!r}: the network "
-                        "evaluation needs a policy at every stocked site of an item", column="reorder_point")
+        raise CaseError(
+            "policies.csv",
+            f"no policy for site {bad['site']!r}, item {bad['item']!r}: the network "
+            "evaluation needs a policy at every stocked site of an item",
+            column="reorder_point",
+        )
     return _run(itemsites, settings, key[["reorder_point", "order_quantity"]].to_numpy(dtype=float), False)
 
 
@@ -468,15 +505,18 @@ def _run(itemsites: pd.DataFrame, settings, given: np.ndarray | None, return_sum
     covered = np.zeros(len(table), dtype=bool)
     for block in _blocks(table, forest):
         depth = len(set(forest.depth(s) for s in block.sites))
-        stocked_below = (block.rows[:, 1:] >= 0).any(axis=1) if block.rows.shape[1] > 1 else np.zeros(
-            block.rows.shape[0], dtype=bool)
+        stocked_below = (
+            (block.rows[:, 1:] >= 0).any(axis=1)
+            if block.rows.shape[1] > 1
+            else np.zeros(block.rows.shape[0], dtype=bool)
+        )
         if depth == 1 or not stocked_below.any():
             continue  # lone sites: single-site below
         rows = block.rows[stocked_below]
         if depth == 2:
             inp = _two_level_inputs(table, rows, settings)
             if given is None:
-                res, seed = ech.optimise_two_level(inp)
+                res, seed = ech.optimise_two_level(inp, workers=min(2, os.cpu_count() or 1))
                 frames.append(_frame_two_level(table, rows, res, inp))
                 if return_summary:
                     nominal = _seed_nominal_cost(inp)
@@ -497,14 +537,27 @@ def _run(itemsites: pd.DataFrame, settings, given: np.ndarray | None, return_sum
         else:
             from optimiser import plan as pl
 
-            frames.append(pl._evaluate_single_site(rest.reset_index(drop=True), settings,
-                                                   given[~covered, 0], given[~covered, 1], []))
+            frames.append(
+                pl._evaluate_single_site(
+                    rest.reset_index(drop=True), settings, given[~covered, 0], given[~covered, 1], []
+                )
+            )
     out = pd.concat(frames, ignore_index=True)[POLICY_COLUMNS]
-    order = table[["site", "item"]].astype(str).reset_index().merge(
-        out.assign(site=out["site"].astype(str), item=out["item"].astype(str)), on=["site", "item"], how="left")
+    order = (
+        table[["site", "item"]]
+        .astype(str)
+        .reset_index()
+        .merge(
+            out.assign(site=out["site"].astype(str), item=out["item"].astype(str)),
+            on=["site", "item"],
+            how="left",
+        )
+    )
     out = order.sort_values("index").drop(columns="index").reset_index(drop=True)[POLICY_COLUMNS]
     if return_summary:
-        summary = pd.concat(summaries, ignore_index=True) if summaries else pd.DataFrame(columns=SUMMARY_COLUMNS)
+        summary = (
+            pd.concat(summaries, ignore_index=True) if summaries else pd.DataFrame(columns=SUMMARY_COLUMNS)
+        )
         return out, summary
     return out
 
@@ -540,45 +593,58 @@ def _tree_inputs(table: pd.DataFrame, rows: np.ndarray, parent: np.ndarray, sett
         return _col(table, rows, name, fill)
 
     return ech.TreeInputs(
-        parent=parent, active=active, mean=np.where(active, col("daily_mean"), 0.0), sd=col("daily_sd"),
-        lead=col("lead_days"), lead_sd=col("lead_days_sd"),
+        parent=parent,
+        active=active,
+        mean=np.where(active, col("daily_mean"), 0.0),
+        sd=col("daily_sd"),
+        lead=col("lead_days"),
+        lead_sd=col("lead_days_sd"),
         count=np.where(active, code[np.maximum(rows, 0)] != md.NORMAL, False),
-        order_cost=col("order_cost"), holding_cost=col("holding_cost"), backorder_cost=col("_back"),
+        order_cost=col("order_cost"),
+        holding_cost=col("holding_cost"),
+        backorder_cost=col("_back"),
         target=col("_target", np.nan) if mode != "cost" else np.full(rows.shape, np.nan),
-        fixed_q=col("order_quantity", np.nan), pack=col("pack_size", 1.0),
-        days_per_year=float(_settings_value(settings, "days_per_year", 365.0)), mode=mode,
-        backorder_basis=_settings_value(settings, "backorder_basis", "per_unit"))
+        fixed_q=col("order_quantity", np.nan),
+        pack=col("pack_size", 1.0),
+        days_per_year=float(_settings_value(settings, "days_per_year", 365.0)),
+        mode=mode,
+        backorder_basis=_settings_value(settings, "backorder_basis", "per_unit"),
+    )
 
 
-def _frame_tree(table: pd.DataFrame, rows: np.ndarray, res: ech.TreeResult, inp: ech.TreeInputs) -> pd.DataFrame:
+def _frame_tree(
+    table: pd.DataFrame, rows: np.ndarray, res: ech.TreeResult, inp: ech.TreeInputs
+) -> pd.DataFrame:
     act = rows >= 0
     idx = rows[act]
     lead = inp.lead + res.delay
-    frame = pd.DataFrame({
-        "site": table["site"].to_numpy(dtype=object)[idx],
-        "item": table["item"].to_numpy(dtype=object)[idx],
-        "order_quantity": res.order_quantity[act],
-        "reorder_point": res.reorder_point[act],
-        "safety_stock": res.safety_stock[act],
-        "lead_time_days": lead[act],
-        "lead_time_demand_mean": res.ltd_mean[act],
-        "lead_time_demand_sd": res.ltd_sd[act],
-        "cycle_service": res.cycle_service[act],
-        "fill_rate": res.fill_rate[act],
-        "expected_on_hand": res.on_hand[act],
-        "expected_backorders": res.backorders[act],
-        "orders_per_year": res.orders_per_year[act],
-        "ordering_cost": res.ordering_cost[act],
-        "holding_cost": res.cycle_stock_cost[act] + res.safety_stock_cost[act],
-        "backorder_cost": res.backorder_cost[act],
-        "total_cost": res.total_cost[act],
-        "cycle_stock_cost": res.cycle_stock_cost[act],
-        "safety_stock_cost": res.safety_stock_cost[act],
-        "z": res.z[act],
-        "distribution": table["distribution"].to_numpy(dtype=np.int8)[idx],
-        "expected_delay_days": res.delay[act],
-        "note": res.note[act],
-    })
+    frame = pd.DataFrame(
+        {
+            "site": table["site"].to_numpy(dtype=object)[idx],
+            "item": table["item"].to_numpy(dtype=object)[idx],
+            "order_quantity": res.order_quantity[act],
+            "reorder_point": res.reorder_point[act],
+            "safety_stock": res.safety_stock[act],
+            "lead_time_days": lead[act],
+            "lead_time_demand_mean": res.ltd_mean[act],
+            "lead_time_demand_sd": res.ltd_sd[act],
+            "cycle_service": res.cycle_service[act],
+            "fill_rate": res.fill_rate[act],
+            "expected_on_hand": res.on_hand[act],
+            "expected_backorders": res.backorders[act],
+            "orders_per_year": res.orders_per_year[act],
+            "ordering_cost": res.ordering_cost[act],
+            "holding_cost": res.cycle_stock_cost[act] + res.safety_stock_cost[act],
+            "backorder_cost": res.backorder_cost[act],
+            "total_cost": res.total_cost[act],
+            "cycle_stock_cost": res.cycle_stock_cost[act],
+            "safety_stock_cost": res.safety_stock_cost[act],
+            "z": res.z[act],
+            "distribution": table["distribution"].to_numpy(dtype=np.int8)[idx],
+            "expected_delay_days": res.delay[act],
+            "note": res.note[act],
+        }
+    )
     return frame[POLICY_COLUMNS]
 
 
@@ -592,24 +658,29 @@ def _summary_tree(table, rows, res, seed, inp, root) -> pd.DataFrame:
     ss_st = np.nansum(np.where(leaf, res.safety_stock, 0.0), axis=1)
     tot = ss_wh + ss_st
     savings = seed.network_cost - res.network_cost
-    return pd.DataFrame({
-        "root": root,
-        "item": table["item"].to_numpy(dtype=object)[rows[:, 0]],
-        "stores": leaf.sum(axis=1),
-        "warehouse_safety_stock": ss_wh,
-        "stores_safety_stock": ss_st,
-        "warehouse_share": np.where(np.abs(tot) > 0, ss_wh / np.where(np.abs(tot) > 0, tot, 1.0), np.nan),
-        "network_cost": res.network_cost,
-        "single_site_cost": np.full(rows.shape[0], np.nan),
-        "single_site_network_cost": seed.network_cost,
-        "savings": savings,
-        "savings_pct": np.where(seed.network_cost > 0, 100.0 * savings / np.where(
-            seed.network_cost > 0, seed.network_cost, 1.0), np.nan),
-        "mean_delay_days": (np.where(leaf, res.delay, 0.0) * demand).sum(axis=1) / w,
-        "single_site_mean_delay_days": (np.where(leaf, seed.delay, 0.0) * demand).sum(axis=1) / w,
-        "store_fill_rate": (np.where(leaf, res.fill_rate, 0.0) * demand).sum(axis=1) / w,
-        "single_site_store_fill_rate": (np.where(leaf, seed.fill_rate, 0.0) * demand).sum(axis=1) / w,
-    })[SUMMARY_COLUMNS]
+    return pd.DataFrame(
+        {
+            "root": root,
+            "item": table["item"].to_numpy(dtype=object)[rows[:, 0]],
+            "stores": leaf.sum(axis=1),
+            "warehouse_safety_stock": ss_wh,
+            "stores_safety_stock": ss_st,
+            "warehouse_share": np.where(np.abs(tot) > 0, ss_wh / np.where(np.abs(tot) > 0, tot, 1.0), np.nan),
+            "network_cost": res.network_cost,
+            "single_site_cost": np.full(rows.shape[0], np.nan),
+            "single_site_network_cost": seed.network_cost,
+            "savings": savings,
+            "savings_pct": np.where(
+                seed.network_cost > 0,
+                100.0 * savings / np.where(seed.network_cost > 0, seed.network_cost, 1.0),
+                np.nan,
+            ),
+            "mean_delay_days": (np.where(leaf, res.delay, 0.0) * demand).sum(axis=1) / w,
+            "single_site_mean_delay_days": (np.where(leaf, seed.delay, 0.0) * demand).sum(axis=1) / w,
+            "store_fill_rate": (np.where(leaf, res.fill_rate, 0.0) * demand).sum(axis=1) / w,
+            "single_site_store_fill_rate": (np.where(leaf, seed.fill_rate, 0.0) * demand).sum(axis=1) / w,
+        }
+    )[SUMMARY_COLUMNS]
 
 
 def _tree(table, rows, block, settings, given, summaries):

@@ -1,0 +1,331 @@
+"""Checks of optimiser.network: the site forest, and network plans against the project's simulator.
+
+Sources: networkx as the reference for graph facts; the project's event simulator (``optimiser.simulate``, an
+independent implementation of the (R, Q) mechanics with FCFS allocation at the warehouse) as the yardstick for
+the METRIC-type network figures. Acceptance limits (store fill rates within 2 percentage points, network cost
+within 5%) are those set by the issue, not published values. All data are invented and seeded.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from models.demand import NEGBIN, POISSON
+from optimiser import network as nw
+from optimiser.errors import CaseError
+from optimiser.simulate import simulate_policies
+
+FILL_LIMIT = 0.02  # issue 4: store fill rates within 2 percentage points of the simulator
+COST_LIMIT = 0.05  # issue 4: network costs within 5% of the simulator
+
+
+@dataclass(frozen=True)
+class Settings:
+    """The fields of optimiser.case.Settings the network code reads."""
+
+    days_per_year: float = 365.0
+    mode: str = "cost"
+    target: float | None = None
+    backorder_basis: str = "per_unit"
+    name: str = "test"
+    currency: str = "EUR"
+    holding_rate: float = 0.2
+    distribution: str = "auto"
+
+
+def _finish(rows: list[dict]) -> pd.DataFrame:
+    t = pd.DataFrame(rows)
+    t["supplier"] = "sup"
+    for c, v in (
+        ("target", np.nan),
+        ("order_quantity", np.nan),
+        ("pack_size", 1.0),
+        ("unit_cost", 1.0),
+        ("volume", 0.0),
+        ("weight", 0.0),
+    ):
+        if c not in t:
+            t[c] = v
+    through = t.groupby("item")["daily_mean"].sum()
+    t["annual_demand"] = np.where(t["upstream"] == "", t["item"].map(through), t["daily_mean"]) * 365.0
+    return t
+
+
+def random_two_level(seed: int, n_items: int, n_stores: int, speed: str, basis: str) -> pd.DataFrame:
+    """An invented warehouse with ``n_stores`` stores; slow movers Poisson, fast movers negative binomial."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for i in range(n_items):
+        item = f"item{i}"
+        h = rng.uniform(1.0, 10.0)
+        b = rng.uniform(5.0, 50.0) if basis == "per_unit" else rng.uniform(20.0, 200.0)
+        rows.append(
+            dict(
+                site="WH",
+                item=item,
+                upstream="",
+                daily_mean=0.0,
+                daily_sd=0.0,
+                lead_days=rng.uniform(5.0, 30.0),
+                lead_days_sd=0.0,
+                order_cost=rng.uniform(50.0, 300.0),
+                holding_cost=0.8 * h,
+                backorder_cost=np.nan,
+                distribution=POISSON,
+            )
+        )
+        for s in range(n_stores):
+            if speed == "slow":
+                d = rng.uniform(0.02, 0.5)
+                sd, dist = np.sqrt(d), POISSON
+            else:
+                d = rng.uniform(5.0, 40.0)
+                sd, dist = np.sqrt(d) * rng.uniform(1.0, 2.0), NEGBIN
+            rows.append(
+                dict(
+                    site=f"S{s + 1:02d}",
+                    item=item,
+                    upstream="WH",
+                    daily_mean=d,
+                    daily_sd=sd,
+                    lead_days=rng.uniform(1.0, 5.0),
+                    lead_days_sd=0.0,
+                    order_cost=rng.uniform(5.0, 40.0),
+                    holding_cost=h,
+                    backorder_cost=b,
+                    distribution=dist,
+                )
+            )
+    return _finish(rows)
+
+
+def simulate_against(table: pd.DataFrame, settings: Settings, *, years: float, reps: int, seed: int = 7):
+    """Plan, simulate the plan; return (merged frame, network-cost errors per item, fill differences)."""
+    pol = nw.plan_network(table, settings)
+    sim_pol = pol.assign(order_quantity=pol["order_quantity"].clip(lower=1.0))
+    sim = simulate_policies(
+        table, sim_pol, settings, years=years, warmup_years=1.0, replications=reps, seed=seed
+    )
+    m = pol.merge(sim, on=["site", "item"], suffixes=("", "_sim"))
+    store = (m["site"] != "WH") & ~m["site"].isin(["C", "H1", "H2"])
+    # network cost = ordering and holding everywhere + the stores' backorder costs (issue 4)
+    m["network_sim"] = (
+        m["ordering_cost_sim"] + m["holding_cost_sim"] + np.where(store, m["backorder_cost_sim"], 0.0)
+    )
+    net = m.groupby("item")[["total_cost", "network_sim"]].sum()
+    cost_err = (net["total_cost"] / net["network_sim"] - 1.0).to_numpy()
+    fill_diff = (m.loc[store, "fill_rate"] - m.loc[store, "fill_rate_sim"]).to_numpy()
+    return m, cost_err, fill_diff
+
+
+# ------------------------------------------------------------------------------------------------- forest
+def test_levels_of_three_level_tree():
+    f = nw.build_forest(["C", "H1", "H2", "A", "B", "D", "X"], ["", "C", "C", "H1", "H1", "H2", ""])
+    assert f.levels == [["C", "X"], ["H1", "H2"], ["A", "B", "D"]]
+    assert f.children("H1") == ["A", "B"] and f.children("A") == []
+    assert f.depth("D") == 2 and f.root_of("D") == "C" and f.height == 3
+    # networkx as the reference: the graph is a forest whose roots are the sites without upstream
+    import networkx as nx
+
+    assert (
+        nx.is_forest(f.graph.to_undirected())
+        and sorted(n for n, d in f.graph.in_degree() if d == 0) == f.roots
+    )
+
+
+@pytest.mark.parametrize(
+    "sites, ups, words",
+    [
+        (["A", "B"], ["", "B"], "its own upstream"),
+        (["A", "B"], ["", "Z"], "unknown upstream site 'Z'"),
+        (["A", "B", "C"], ["C", "A", "B"], "cycle"),
+        (["A", "B", "B"], ["", "A", ""], "supplied by two sites"),
+    ],
+)
+def test_forest_errors_name_the_sites(sites, ups, words):
+    with pytest.raises(CaseError) as err:
+        nw.build_forest(sites, ups)
+    assert words in str(err.value)
+    if words == "cycle":
+        assert (
+            "A -> B -> C -> A" in str(err.value)
+            or "B -> C -> A -> B" in str(err.value)
+            or "C -> A -> B -> C" in str(err.value)
+        )
+
+
+def test_item_not_stocked_upstream_is_an_error():
+    t = random_two_level(1, 2, 2, "slow", "per_unit")
+    t = t[~((t["site"] == "WH") & (t["item"] == "item1"))]
+    with pytest.raises(CaseError, match="item 'item1' is stocked at 'S01' but not at its upstream site 'WH'"):
+        nw.forest_from_itemsites(t)
+
+
+# ------------------------------------------------------------------------------------------------- plans
+def test_plan_frame_and_summary():
+    t = random_two_level(3, 3, 4, "slow", "per_unit")
+    pol, summary = nw.plan_network(t, Settings(), return_summary=True)
+    assert list(pol.columns) == nw.POLICY_COLUMNS
+    assert list(pol["site"]) == list(t["site"]) and list(pol["item"]) == list(t["item"])
+    wh = pol["site"] == "WH"
+    assert np.all(pol.loc[wh, "expected_delay_days"] == 0.0)
+    assert np.all(pol.loc[~wh, "expected_delay_days"] > 0.0)
+    # a store's lead time is its transit time plus the delay
+    np.testing.assert_allclose(
+        pol.loc[~wh, "lead_time_days"],
+        t.loc[~wh, "lead_days"] + pol.loc[~wh, "expected_delay_days"],
+        rtol=1e-12,
+    )
+    assert list(summary.columns) == nw.SUMMARY_COLUMNS and len(summary) == 3
+    # the plan is no worse than each site planned alone (both evaluated in the network model)
+    assert np.all(summary["network_cost"] <= summary["single_site_network_cost"] * (1 + 1e-9))
+    tot = pol.groupby("item")["total_cost"].sum().reindex(summary["item"]).to_numpy()
+    np.testing.assert_allclose(tot, summary["network_cost"], rtol=1e-9)
+
+
+def test_evaluate_reproduces_plan():
+    t = random_two_level(4, 3, 5, "fast", "per_unit_year")
+    s = Settings(backorder_basis="per_unit_year")
+    pol = nw.plan_network(t, s)
+    again = nw.evaluate_network(t, pol[["site", "item", "reorder_point", "order_quantity"]], s)
+    for c in ("total_cost", "fill_rate", "expected_backorders", "expected_delay_days"):
+        np.testing.assert_allclose(again[c], pol[c], rtol=1e-7, atol=1e-9)
+
+
+def test_service_mode_meets_targets_in_the_model():
+    t = random_two_level(5, 3, 4, "fast", "per_unit")
+    s = Settings(mode="fill_rate", target=0.97)
+    pol = nw.plan_network(t, s)
+    stores = pol[pol["site"] != "WH"]
+    assert np.all(stores["fill_rate"] >= 0.97 - 1e-6)
+
+
+# ------------------------------------------------------------------------------------------------- simulator
+DEFAULT_NETWORKS = [  # (seed, items, stores, speed, basis)
+    (11, 4, 2, "slow", "per_unit"),
+    (12, 3, 12, "fast", "per_unit_year"),
+    (13, 3, 30, "slow", "per_unit_year"),
+]
+SLOW_NETWORKS = [
+    (21, 6, 2, "fast", "per_unit"),
+    (22, 6, 5, "slow", "per_unit"),
+    (23, 6, 8, "slow", "per_unit_year"),
+    (24, 6, 15, "fast", "per_unit_year"),
+    (25, 6, 20, "slow", "per_unit"),
+    (26, 6, 30, "fast", "per_unit"),
+    (27, 6, 30, "slow", "per_unit_year"),
+    (28, 6, 10, "fast", "per_unit"),
+]
+
+
+def _check_against_simulator(seed, items, stores, speed, basis, years, reps):
+    t = random_two_level(seed, items, stores, speed, basis)
+    _, cost_err, fill_diff = simulate_against(t, Settings(backorder_basis=basis), years=years, reps=reps)
+    print(
+        f"\n{stores} stores, {speed}, {basis}: network cost error max {100 * np.max(np.abs(cost_err)):.2f}%, "
+        f"store fill max {100 * np.max(np.abs(fill_diff)):.2f} points"
+    )
+    assert np.max(np.abs(cost_err)) <= COST_LIMIT
+    assert np.max(np.abs(fill_diff)) <= FILL_LIMIT
+
+
+@pytest.mark.parametrize("seed, items, stores, speed, basis", DEFAULT_NETWORKS)
+def test_two_level_against_simulator(seed, items, stores, speed, basis):
+    _check_against_simulator(
+        seed, items, stores, speed, basis, years=60.0 if speed == "slow" else 6.0, reps=6
+    )
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("seed, items, stores, speed, basis", SLOW_NETWORKS)
+def test_two_level_against_simulator_more(seed, items, stores, speed, basis):
+    _check_against_simulator(
+        seed, items, stores, speed, basis, years=100.0 if speed == "slow" else 10.0, reps=8
+    )
+
+
+def three_level(seed: int, n_items: int) -> pd.DataFrame:
+    """Invented: central C -> hubs H1, H2 -> three stores each, Poisson demand."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for i in range(n_items):
+        item, h, b = f"item{i}", rng.uniform(1.0, 10.0), rng.uniform(5.0, 50.0)
+        rows.append(
+            dict(
+                site="C",
+                item=item,
+                upstream="",
+                daily_mean=0.0,
+                daily_sd=0.0,
+                lead_days=20.0,
+                lead_days_sd=0.0,
+                order_cost=200.0,
+                holding_cost=0.7 * h,
+                backorder_cost=np.nan,
+                distribution=POISSON,
+            )
+        )
+        for hub in ("H1", "H2"):
+            rows.append(
+                dict(
+                    site=hub,
+                    item=item,
+                    upstream="C",
+                    daily_mean=0.0,
+                    daily_sd=0.0,
+                    lead_days=4.0,
+                    lead_days_sd=0.0,
+                    order_cost=60.0,
+                    holding_cost=0.85 * h,
+                    backorder_cost=np.nan,
+                    distribution=POISSON,
+                )
+            )
+            for k in range(3):
+                d = rng.uniform(0.2, 3.0)
+                rows.append(
+                    dict(
+                        site=f"{hub}S{k}",
+                        item=item,
+                        upstream=hub,
+                        daily_mean=d,
+                        daily_sd=np.sqrt(d),
+                        lead_days=2.0,
+                        lead_days_sd=0.0,
+                        order_cost=15.0,
+                        holding_cost=h,
+                        backorder_cost=b,
+                        distribution=POISSON,
+                    )
+                )
+    return _finish(rows)
+
+
+def test_three_level_plan_levels_and_delays():
+    t = three_level(3, 2)
+    assert nw.forest_from_itemsites(t).levels == [
+        ["C"],
+        ["H1", "H2"],
+        ["H1S0", "H1S1", "H1S2", "H2S0", "H2S1", "H2S2"],
+    ]
+    pol, summary = nw.plan_network(t, Settings(), return_summary=True)
+    assert np.all(pol.loc[pol["site"] == "C", "expected_delay_days"] == 0.0)
+    assert np.all(pol.loc[pol["site"] != "C", "expected_delay_days"] > 0.0)
+    assert len(summary) == 2 and np.all(summary["savings"] >= -1e-9 * summary["network_cost"])
+
+
+@pytest.mark.slow
+def test_three_level_against_simulator():
+    """Three levels by the level-by-level step: stores within 2 points, network cost within 8% (ours)."""
+    t = three_level(3, 4)
+    _, cost_err, fill_diff = simulate_against(t, Settings(), years=60.0, reps=6)
+    print(
+        f"\nthree levels: cost error max {100 * np.max(np.abs(cost_err)):.2f}%, "
+        f"fill max {100 * np.max(np.abs(fill_diff)):.2f} points"
+    )
+    assert np.max(np.abs(cost_err)) <= 0.08
+    assert np.max(np.abs(fill_diff)) <= FILL_LIMIT
