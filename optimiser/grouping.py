@@ -78,9 +78,15 @@ class GroupResult:
 
 
 def _independent_costs(
-    rows: pd.DataFrame, var_daily: np.ndarray, order_cost: np.ndarray, settings: Any
-) -> np.ndarray:
-    """Annual cost of ordering each item alone with its own (R, Q), normal lead-time demand."""
+    rows: pd.DataFrame, var_daily: np.ndarray, order_cost: np.ndarray, settings: Any,
+    q_min: np.ndarray | None = None, q_max: np.ndarray | None = None,
+) -> tuple[np.ndarray, int, int]:
+    """Annual cost of ordering each item alone with its own (R, Q), normal lead-time demand.
+
+    ``q_min``/``q_max`` bound each single-item order (the supplier's minimum value / the vehicle's capacity):
+    where the free optimum breaks a bound, Q is fixed at that bound and R re-optimised. Returns the costs,
+    the number of items so limited and the number that cannot meet both bounds alone (Q = ``q_max`` then).
+    """
     d = rows["annual_demand"].to_numpy(float) / settings.days_per_year
     mu, sd = lead_time_demand(d, np.sqrt(var_daily), rows["lead_days"].to_numpy(float),
                               rows["lead_days_sd"].to_numpy(float))
@@ -91,9 +97,20 @@ def _independent_costs(
         kw["backorder_cost"] = np.where(np.isfinite(b), b, 0.0)
     if settings.mode != "cost":
         kw["target"] = rows["target"].to_numpy(float)
-    pol = ss.optimise_policy(rows["annual_demand"].to_numpy(float), mu, sd, order_cost,
-                             rows["holding_cost"].to_numpy(float), **kw)
-    return np.asarray(pol.total_cost, dtype=float)
+    args = (rows["annual_demand"].to_numpy(float), mu, sd, order_cost, rows["holding_cost"].to_numpy(float))
+    pol = ss.optimise_policy(*args, **kw)
+    cost = np.asarray(pol.total_cost, dtype=float)
+    n = cost.size
+    lo = np.zeros(n) if q_min is None else q_min
+    hi = np.full(n, np.inf) if q_max is None else q_max
+    impossible = lo > hi
+    q = np.asarray(pol.order_quantity, dtype=float)
+    fixed = np.where(impossible | (q > hi), hi, np.where(q < lo, lo, np.nan))
+    limited = np.isfinite(fixed)
+    if np.any(limited):
+        pol2 = ss.optimise_policy(*args, order_quantity=fixed, **kw)
+        cost = np.where(limited, np.asarray(pol2.total_cost, dtype=float), cost)
+    return cost, int(limited.sum()), int(impossible.sum())
 
 
 def _families(case: Case, table: pd.DataFrame, deliveries: bool) -> list[dict[str, Any]]:
@@ -314,7 +331,16 @@ def group_case(
             group_rows.append(out)
             continue
         minor = f["minor"][active]
-        ind = _independent_costs(act, act["_var"].to_numpy(float), f["major"] + minor, settings)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            u = act["unit_cost"].to_numpy(float)
+            q_min = np.where(u > 0, f["min_value"] / u, np.inf) if f["min_value"] > 0 else np.zeros(len(act))
+            q_max = np.full(len(act), np.inf)
+            for per_unit, cap in ((act["volume"].to_numpy(float), f["cap_v"]),
+                                  (act["weight"].to_numpy(float), f["cap_w"])):
+                if math.isfinite(cap):
+                    q_max = np.minimum(q_max, np.where(per_unit > 0, cap / per_unit, np.inf))
+        ind, n_lim, n_imp = _independent_costs(act, act["_var"].to_numpy(float), f["major"] + minor, settings,
+                                               q_min, q_max)
         out.loc[active, "independent_cost"] = ind
         rec["independent_cost"] = float(ind.sum())
         if f["major"] <= 0:
@@ -343,6 +369,11 @@ def group_case(
             capacity_volume=f["cap_v"], capacity_weight=f["cap_w"], min_order_value=f["min_value"],
             backorder_basis=settings.backorder_basis, mode=settings.mode, target=target,
         )
+        if n_lim:
+            warnings.append(f"family {f['family']}: ordered alone, {n_lim} item(s) need an order quantity at "
+                            "the supplier's minimum value or the vehicle's capacity (independent cost with Q "
+                            "fixed there)" + (f"; {n_imp} cannot meet both alone (Q at capacity, below the "
+                                              "minimum)" if n_imp else ""))
         say(f"grouping {f['family']}: {len(act)} item(s)")
         sol = gm.solve_family(fam, k_max=k_max, powers_of_two=powers_of_two, grid_ratio=grid_ratio,
                               time_limit=time_limit)

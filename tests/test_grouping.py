@@ -209,3 +209,19 @@ def test_runs_csv_errors_name_row_and_column(case_writer, tmp_path, capsys):
     err = capsys.readouterr().err
     assert "runs.csv" in err and "row 3" in err and "supplier" in err
     assert not (tmp_path / "o").exists()
+
+
+def test_independent_cost_respects_the_vehicle(shop):
+    # b1 alone: its free optimal Q would not fit max_volume 3 (volume 0.01 per unit), so Q = 300 and R is
+    # optimised for it; checked by a dense scan of the Hadley-Whitin (1963) cost over R with Q = 300
+    from scipy.stats import norm
+
+    res = group_case(shop)
+    ind = float(res.groups.set_index("item").loc["b1", "independent_cost"])
+    D, A, h, b, Q = 8 * 360.0, 92.0, 0.25 * 12, 25.0, 300.0
+    mu, sd = 8 * 10.0, math.sqrt(10 * 3.0**2)
+    R = np.linspace(mu - 2 * sd, mu + 6 * sd, 200001)
+    z = (R - mu) / sd
+    cost = h * (Q / 2 + R - mu) + A * D / Q + b * D * sd * (norm.pdf(z) - z * norm.sf(z)) / Q
+    assert ind == pytest.approx(float(cost.min()), rel=1e-6)
+    assert any("shop/beta" in w and "capacity" in w for w in res.warnings)
