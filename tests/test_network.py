@@ -210,7 +210,7 @@ DEFAULT_NETWORKS = [  # (seed, items, stores, speed, basis)
     (12, 3, 12, "fast", "per_unit_year"),
     (13, 3, 30, "slow", "per_unit_year"),
 ]
-# Known shortfalls (measured, see the report): with two fast stores ordering large batches the model overstates
+# Known shortfalls (measured): with two fast stores ordering large batches the model overstates
 # the stores' shortages (network cost +14%); with eight slow stores behind a warehouse kept below zero one
 # store's fill rate is 2.9 points low. Kept in the set, marked, so that a fix shows as XPASS.
 _FEW_BATCHES = pytest.mark.xfail(reason="two fast stores, large batches: wait tail overstated (cost +14%)",
