@@ -993,7 +993,7 @@ def solve_family(
         msg = (f"no base cycle meets the constraints ({', '.join(why)}): the minimum order value needs "
                f"T >= {t_lo:.6g} years but capacity/shelf life allow at most {t_hi:.6g}; "
                "the unconstrained RAND policy is shown and it violates them")
-        T, k = rnd.cycle, rnd.multiples
+        T, k = rnd.cycle, np.minimum(rnd.multiples, ks.max())
         c, _, _ = _policy_cost(fam, T, k)
         return finish("infeasible", msg, T, k, S / T + float(c.sum()), math.nan, math.nan, 0, 0, 0, False)
 
