@@ -157,8 +157,8 @@ SUPPLIERS_COLUMNS = [
     _num("lead_days_sd", required=False, default=0.0),
     _num("order_cost"),
     _num("line_cost", required=False, default=0.0),
-    _num("max_volume", required=False, strict=True),
-    _num("max_weight", required=False, strict=True),
+    _num("capacity_volume", required=False, strict=True),
+    _num("capacity_weight", required=False, strict=True),
     _num("min_order_value", required=False, default=0.0),
 ]
 ITEMS_COLUMNS = [

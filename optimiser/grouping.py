@@ -2,7 +2,7 @@
 
 A *family* is what one site buys from one supplier (a site with no upstream): the supplier's ``order_cost`` is
 the shared (major) cost, each item's ``line_cost`` (``items.csv``, else ``suppliers.csv``) the minor cost,
-the supplier's ``max_volume``/``max_weight`` the capacity of one order and ``min_order_value`` its minimum
+the supplier's ``capacity_volume``/``capacity_weight`` the capacity of one order and ``min_order_value`` its minimum
 value (at ``unit_cost``). Optionally (``deliveries=True``) each store's deliveries from its upstream form a
 family too, with the site's ``delivery_cost`` as the shared cost and no line cost.
 
@@ -130,8 +130,8 @@ def _families(case: Case, table: pd.DataFrame, deliveries: bool) -> list[dict[st
             "family": f"{site}/{supplier}", "kind": "supplier", "site": site, "supplier": supplier,
             "rows": rows,
             "major": float(srec["order_cost"]), "minor": minor,
-            "cap_v": float(srec["max_volume"]) if np.isfinite(srec["max_volume"]) else math.inf,
-            "cap_w": float(srec["max_weight"]) if np.isfinite(srec["max_weight"]) else math.inf,
+            "cap_v": float(srec["capacity_volume"]) if np.isfinite(srec["capacity_volume"]) else math.inf,
+            "cap_w": float(srec["capacity_weight"]) if np.isfinite(srec["capacity_weight"]) else math.inf,
             "min_value": float(srec["min_order_value"]),
             "shelf": None if shelf is None else shelf.reindex(rows["item"]).to_numpy(float),
         })
@@ -148,7 +148,7 @@ def _families(case: Case, table: pd.DataFrame, deliveries: bool) -> list[dict[st
 
 
 RUNS_FILE = "runs.csv"
-RUN_COLUMNS = ("run", "site", "supplier", "run_cost", "max_volume", "max_weight", "join_cost")
+RUN_COLUMNS = ("run", "site", "supplier", "run_cost", "capacity_volume", "capacity_weight", "join_cost")
 
 
 def read_runs(case: Case) -> pd.DataFrame | None:
@@ -162,7 +162,7 @@ def read_runs(case: Case) -> pd.DataFrame | None:
     Returns
     -------
     DataFrame or None
-        One row per (run, supplier): ``run, site, supplier, run_cost, max_volume, max_weight, join_cost``
+        One row per (run, supplier): ``run, site, supplier, run_cost, capacity_volume, capacity_weight, join_cost``
         (NaN capacities = none, join cost 0 by default); None when the file is absent.
 
     Raises
@@ -207,7 +207,7 @@ def read_runs(case: Case) -> pd.DataFrame | None:
             if not cell[col]:
                 raise CaseError(RUNS_FILE, "must not be empty", row=rownum, column=col)
             out[col] = cell[col]
-        for col in ("run_cost", "max_volume", "max_weight", "join_cost"):
+        for col in ("run_cost", "capacity_volume", "capacity_weight", "join_cost"):
             text = cell.get(col, "")
             if text == "":
                 out[col] = math.nan
@@ -236,7 +236,7 @@ def read_runs(case: Case) -> pd.DataFrame | None:
         if part["supplier"].duplicated().any():
             r = int(part.loc[part["supplier"].duplicated(), "row"].iloc[0])
             raise CaseError(RUNS_FILE, f"supplier listed twice in run {name!r}", row=r, column="supplier")
-        for col in ("run_cost", "max_volume", "max_weight"):
+        for col in ("run_cost", "capacity_volume", "capacity_weight"):
             vals = part[col].dropna().unique()
             if len(vals) > 1:
                 raise CaseError(RUNS_FILE, f"run {name!r} has two different values",
@@ -439,8 +439,8 @@ def _apply_runs(runs: pd.DataFrame, solved: dict, fam_rows: list, group_rows: li
             shared.append(gm.SharedRun(
                 fixed_cost=float(first["run_cost"]),
                 members=tuple(local[f"{site}/{s}"] for s in part["supplier"]),
-                capacity_volume=float(first["max_volume"]) if np.isfinite(first["max_volume"]) else math.inf,
-                capacity_weight=float(first["max_weight"]) if np.isfinite(first["max_weight"]) else math.inf,
+                capacity_volume=float(first["capacity_volume"]) if np.isfinite(first["capacity_volume"]) else math.inf,
+                capacity_weight=float(first["capacity_weight"]) if np.isfinite(first["capacity_weight"]) else math.inf,
                 join_cost=tuple(float(x) for x in part["join_cost"]),
             ))
         say(f"shared runs at {site}: {len(shared)} run(s), {len(names)} supplier(s)")
@@ -555,8 +555,8 @@ def write_groups(
 COMMAND_HELP = "group items that share a supplier's order cost and compare with ordering each item alone"
 COMMAND_DESCRIPTION = (
     "For every site and supplier it buys from, choose a base cycle and for each item how many cycles pass "
-    "between its orders, so that the supplier's order cost is shared, orders fit the supplier's max_volume "
-    "and max_weight, reach its min_order_value, and no item waits longer than its shelf_life_days. Each item "
+    "between its orders, so that the supplier's order cost is shared, orders fit the supplier's capacity_volume "
+    "and capacity_weight, reach its min_order_value, and no item waits longer than its shelf_life_days. Each item "
     "gets an order-up-to level for its interval plus lead time. groups.csv lists per item the base cycle, "
     "the multiple, the interval, the order-up-to level and its annual cost; families.csv and summary.json "
     "give per family the cost of ordering each item alone with its own reorder point and order quantity, "

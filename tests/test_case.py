@@ -396,7 +396,7 @@ def test_optional_columns_get_documented_defaults(case_writer) -> None:
     assert sites.loc["s1", "delivery_cost"] == 0.0
     sup = case.suppliers.set_index("supplier")
     assert sup.loc["sup1", "lead_days_sd"] == 0.0 and sup.loc["sup1", "line_cost"] == 0.0
-    assert math.isnan(sup.loc["sup1", "max_volume"]) and sup.loc["sup1", "min_order_value"] == 0.0
+    assert math.isnan(sup.loc["sup1", "capacity_volume"]) and sup.loc["sup1", "min_order_value"] == 0.0
     items = case.items.set_index("item")
     assert items.loc["a", "pack_size"] == 1.0
     assert math.isnan(items.loc["a", "holding_cost"]) and math.isnan(items.loc["a", "volume"])

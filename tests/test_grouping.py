@@ -33,7 +33,7 @@ ONE_SITE = {
         shop,,,,
         """,
     "suppliers.csv": """\
-        supplier,lead_days,lead_days_sd,order_cost,line_cost,max_volume,max_weight,min_order_value
+        supplier,lead_days,lead_days_sd,order_cost,line_cost,capacity_volume,capacity_weight,min_order_value
         alpha,5,1,120,4,,,
         beta,10,0,90,2,3,,
         """,
@@ -134,7 +134,7 @@ def test_independent_cost_is_the_single_site_optimum(shop):
 def test_unreachable_minimum_order_is_reported(case_writer):
     files = dict(ONE_SITE)
     files["suppliers.csv"] = """\
-        supplier,lead_days,lead_days_sd,order_cost,line_cost,max_volume,max_weight,min_order_value
+        supplier,lead_days,lead_days_sd,order_cost,line_cost,capacity_volume,capacity_weight,min_order_value
         alpha,5,1,120,4,,,
         beta,10,0,90,2,3,,1000000
         """
@@ -175,7 +175,7 @@ def test_deliveries_option_adds_store_families(case_writer):
 def test_shared_run_from_runs_csv(case_writer):
     files = dict(ONE_SITE)
     files["runs.csv"] = """\
-        run,site,supplier,run_cost,max_volume,max_weight,join_cost
+        run,site,supplier,run_cost,capacity_volume,capacity_weight,join_cost
         harbour-van,shop,alpha,60,,,20
         harbour-van,shop,beta,,,,15
         """
@@ -212,7 +212,7 @@ def test_runs_csv_errors_name_row_and_column(case_writer, tmp_path, capsys):
 
 
 def test_independent_cost_respects_the_vehicle(shop):
-    # b1 alone: its free optimal Q would not fit max_volume 3 (volume 0.01 per unit), so Q = 300 and R is
+    # b1 alone: its free optimal Q would not fit capacity_volume 3 (volume 0.01 per unit), so Q = 300 and R is
     # optimised for it; checked by a dense scan of the Hadley-Whitin (1963) cost over R with Q = 300
     from scipy.stats import norm
 
