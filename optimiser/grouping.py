@@ -2,9 +2,9 @@
 
 A *family* is what one site buys from one supplier (a site with no upstream): the supplier's ``order_cost`` is
 the shared (major) cost, each item's ``line_cost`` (``items.csv``, else ``suppliers.csv``) the minor cost,
-the supplier's ``capacity_volume``/``capacity_weight`` the capacity of one order and ``min_order_value`` its minimum
-value (at ``unit_cost``). Optionally (``deliveries=True``) each store's deliveries from its upstream form a
-family too, with the site's ``delivery_cost`` as the shared cost and no line cost.
+the supplier's ``capacity_volume``/``capacity_weight`` the capacity of one order and ``min_order_value`` its
+minimum value (at ``unit_cost``). Optionally (``deliveries=True``) each store's deliveries from its upstream
+form a family too, with the site's ``delivery_cost`` as the shared cost and no line cost.
 
 Each family is solved by :func:`models.grouping_milp.solve_family` and compared with ordering every item
 alone with its own (R, Q) (:func:`models.single_site.optimise_policy`, order cost = major + minor cost, normal
@@ -75,6 +75,11 @@ class GroupResult:
         return {"families": int(len(self.families)), "solved": int(len(ok)), "independent_cost": ind,
                 "grouped_cost": grp, "savings": ind - grp,
                 "savings_pct": (ind - grp) / ind * 100.0 if ind > 0 else 0.0}
+
+
+def _finite_or_inf(value: float) -> float:
+    """A capacity cell as a float, with a missing (NaN) capacity read as no limit."""
+    return float(value) if np.isfinite(value) else math.inf
 
 
 def _independent_costs(
@@ -162,7 +167,8 @@ def read_runs(case: Case) -> pd.DataFrame | None:
     Returns
     -------
     DataFrame or None
-        One row per (run, supplier): ``run, site, supplier, run_cost, capacity_volume, capacity_weight, join_cost``
+        One row per (run, supplier):
+        ``run, site, supplier, run_cost, capacity_volume, capacity_weight, join_cost``
         (NaN capacities = none, join cost 0 by default); None when the file is absent.
 
     Raises
@@ -439,8 +445,8 @@ def _apply_runs(runs: pd.DataFrame, solved: dict, fam_rows: list, group_rows: li
             shared.append(gm.SharedRun(
                 fixed_cost=float(first["run_cost"]),
                 members=tuple(local[f"{site}/{s}"] for s in part["supplier"]),
-                capacity_volume=float(first["capacity_volume"]) if np.isfinite(first["capacity_volume"]) else math.inf,
-                capacity_weight=float(first["capacity_weight"]) if np.isfinite(first["capacity_weight"]) else math.inf,
+                capacity_volume=_finite_or_inf(first["capacity_volume"]),
+                capacity_weight=_finite_or_inf(first["capacity_weight"]),
                 join_cost=tuple(float(x) for x in part["join_cost"]),
             ))
         say(f"shared runs at {site}: {len(shared)} run(s), {len(names)} supplier(s)")
@@ -555,8 +561,9 @@ def write_groups(
 COMMAND_HELP = "group items that share a supplier's order cost and compare with ordering each item alone"
 COMMAND_DESCRIPTION = (
     "For every site and supplier it buys from, choose a base cycle and for each item how many cycles pass "
-    "between its orders, so that the supplier's order cost is shared, orders fit the supplier's capacity_volume "
-    "and capacity_weight, reach its min_order_value, and no item waits longer than its shelf_life_days. Each item "
+    "between its orders, so that the supplier's order cost is shared, orders fit the supplier's "
+    "capacity_volume and capacity_weight, reach its min_order_value, and no item waits longer than its "
+    "shelf_life_days. Each item "
     "gets an order-up-to level for its interval plus lead time. groups.csv lists per item the base cycle, "
     "the multiple, the interval, the order-up-to level and its annual cost; families.csv and summary.json "
     "give per family the cost of ordering each item alone with its own reorder point and order quantity, "
