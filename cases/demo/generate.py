@@ -34,10 +34,11 @@ BRANCH_SIZE = {"northquay": 1.4, "gullhaven": 1.0, "eastpier": 0.8, "kestrel-bay
 
 SUPPLIERS = [
     # supplier, lead days, lead sd, order cost, line cost, max volume m3, max weight kg, min order value
-    ("ropecraft", 9.0, 2.0, 60.0, 1.5, 6.0, 1500.0, 400.0),
-    ("hullguard-coatings", 14.0, 4.0, 85.0, 2.0, 8.0, 3000.0, 750.0),
-    ("brightmark-safety", 6.0, 1.5, 45.0, 1.0, 4.0, 900.0, 250.0),
-    ("anchorline-hardware", 35.0, 8.0, 140.0, 3.0, 12.0, 6000.0, 1500.0),
+    # (a small lorry of 18-20 m3 for the near suppliers; anchorline ships a forty-foot container of 67 m3)
+    ("ropecraft", 9.0, 2.0, 60.0, 1.5, 18.0, 5000.0, 400.0),
+    ("hullguard-coatings", 14.0, 4.0, 85.0, 2.0, 14.0, 8000.0, 750.0),
+    ("brightmark-safety", 6.0, 1.5, 45.0, 1.0, 20.0, 6000.0, 250.0),
+    ("anchorline-hardware", 35.0, 8.0, 140.0, 3.0, 67.0, 26000.0, 1500.0),
 ]
 
 # family, supplier, names, unit cost range, volume m3 range, weight kg range, speed
