@@ -1,33 +1,30 @@
-"""Two-echelon kernels: warehouse demand from store order streams, warehouse backorders, delay moments.
+"""Two-echelon kernels: warehouse demand from store order streams, its backorders, the delay, the stores.
 
 Everything here is numpy over items: a warehouse quantity has shape ``(n,)``, a store quantity ``(n, m)`` with
-``m`` the (padded) number of stores per item; absent stores are padded with zero demand. Count distributions
-are
-2-D pmf arrays ``(n, width)`` on the unit grid ``0 .. width - 1``.
+``m`` the (padded) number of stores per item; absent stores are padded with zero demand. Count pmfs are 2-D
+arrays ``(items, width)`` on the unit grid ``0 .. width - 1``, grouped by width.
 
-Time is in one consistent unit chosen by the caller (the application uses days): demand rates are per time
-unit
-and lead times in time units. The store-level cost and service formulas are the single-site ones
-(:mod:`models.single_site`); this module supplies the lead-time demand moments the stores face.
+Time is in one consistent unit chosen by the caller (the application uses days): demand rates per time unit,
+lead times in time units, costs per year. Store costs and service come from the single-site functions
+(:mod:`models.single_site`); this module supplies the lead-time demand the stores face.
 
-The METRIC-type step (Sherbrooke 1968, extended to batches as in Deuermeyer & Schwarz 1981 and, for the delay
-variance, Svoronos & Zipkin 1988):
+The METRIC-type step (Sherbrooke 1968, extended to batches as in Deuermeyer & Schwarz 1981, with the delay
+variance after Svoronos & Zipkin 1988):
 
 * warehouse lead-time demand ``X0`` = own customer demand + ``sum_i Q_i * floor((D_i(L0) + V_i) / Q_i)`` with
-  ``V_i`` uniform on ``{0 .. Q_i - 1}`` (the store's inventory position deficit), independent across stores;
-* warehouse inventory position uniform on ``R0 + g, R0 + 2g, .., R0 + Q0`` where ``g`` is the lattice step of
-the
-  warehouse demand (the gcd of the store batches when there is no own demand and ``Q0`` is a multiple of it,
-  else 1; continuous for normal demand);
-* ``E[W] = E[B0] / lambda0`` (Little's law) and, by the distributional form of Little's law for a stream of
-  batches (units arriving during the delay), ``Var(W) = max(0, Var(B0) - v0 E[W]) / lambda0**2`` where ``v0``
-  is
-  the variance rate of the warehouse demand stream (``sum lambda_i Q_i`` for batch streams);
-* store ``i`` then faces lead-time demand with mean ``d_i (L_i + E[W])`` and variance
-  ``s_i**2 (L_i + E[W]) + d_i**2 (sL_i**2 + Var(W))``.
+  ``V_i`` uniform on ``{0 .. Q_i - 1}``, independent across stores: convolved exactly for narrow count items,
+  else moments (with the batching correction) fitted by a negative binomial or a normal;
+* warehouse inventory position uniform on ``R0 + g, .., R0 + Q0`` (``g`` the gcd of the store batches when
+  there is no own demand and ``Q0`` is a multiple of it, else 1; continuous for normal demand);
+* ``E[W] = E[B0] / lambda0`` (Little's law); ``Var(W)`` from a base-stock decomposition over the positions
+  (:func:`delay_moments`); the probability of waiting at all from the positions;
+* store ``i`` faces lead-time demand with mean ``d_i (L_i + E[W])`` and variance
+  ``s_i**2 (L_i + E[W]) + d_i**2 (sL_i**2 + Var(W))`` (two-moment fit, used inside searches) and, for the
+  reported figures and the final reorder points, the mixture over a three-point delay (:func:`wait_points`).
 
-For one-for-one stores with Poisson demand the store moments above equal the exact moments of Graves' (1985)
-binomial disaggregation; :func:`exact_one_for_one` computes the exact distributions as a reference.
+For one-for-one stores with Poisson demand the two-moment store figures use the exact moments of Graves'
+(1985) binomial disaggregation; :func:`exact_one_for_one` computes the exact distributions as a reference.
+Optimisation: :func:`optimise_two_level` (two levels), :func:`optimise_tree` (deeper trees, level by level).
 """
 
 from __future__ import annotations
@@ -238,10 +235,8 @@ def order_stream_variance(mean: np.ndarray, var: np.ndarray, q: np.ndarray) -> n
     ``r (Q - r) = Q**2/6 - (Q**2 / pi**2) sum_k cos(2 pi k r / Q) / k**2`` and, for normal ``D``,
     ``E cos(2 pi k D / Q) = exp(-2 pi**2 k**2 Var(D) / Q**2) cos(2 pi k E[D] / Q)`` (used when the sd is at
     least ``BATCH_SERIES_RATIO * Q``; otherwise the sum over the intervals ``[jQ, (j + 1)Q)`` of truncated
-    normal moments). When the demand spread
-    is large against ``Q`` the correction tends to ``Q**2/6``; when ``Q`` is large against the mean demand it
-    is
-    about ``E[D] Q``.
+    normal moments). When the demand spread is large against ``Q`` the correction tends to ``Q**2/6``; when
+    ``Q`` is large against the mean demand it is about ``E[D] Q``.
     """
     mean = np.asarray(mean, dtype=float)
     var = np.maximum(np.asarray(var, dtype=float), 0.0)
@@ -659,8 +654,8 @@ def warehouse_moments(
     -----
     Inventory position uniform on ``R0 + g, .., R0 + Q0`` (discrete) or on ``(R0, R0 + Q0]`` (normal):
     ``E[B0] = mean_y E(X - y)^+``, ``E[B0^2] = mean_y E((X - y)^+)^2``, ``E[I0] = E[IP] - E[X] + E[B0]``.
-    Normal: ``E[B0] = sigma**2 (H2(z_R) - H2(z_RQ)) / (2 Q0)``, ``E[B0^2] = sigma**3 (H3(z_R) - H3(z_RQ)) /
-    (3 Q0)``.
+    Normal: ``E[B0] = sigma**2 (H2(z_R) - H2(z_RQ)) / (2 Q0)``, ``E[B0^2] = sigma**3 (H3(z_R) - H3(z_RQ)) / (3
+    Q0)``.
     """
     r0 = np.asarray(reorder_point, dtype=float)
     q0 = np.asarray(order_quantity, dtype=float)
@@ -800,8 +795,7 @@ def delay_moments(state: WarehouseState, demand: WarehouseDemand) -> tuple[np.nd
     Notes
     -----
     ``E[W] = E[B0] / lambda0`` (Little's law; Sherbrooke 1968). For the second moment the warehouse is seen,
-    as
-    an (R0, Q0) system with uniform inventory position, as a mixture of base-stock systems with
+    as an (R0, Q0) system with uniform inventory position, as a mixture of base-stock systems with
     ``S0 = y`` on the lattice ``R0 + g .. R0 + Q0``:
 
     * ``y >= 0``: the order is filled by stock ordered ``y`` units earlier; the backorders are the units that
@@ -810,14 +804,13 @@ def delay_moments(state: WarehouseState, demand: WarehouseDemand) -> tuple[np.nd
       points). For Poisson unit demand ``v(w) = lambda0 w`` and this is the distributional Little's law,
       exact, giving the Svoronos & Zipkin (1988) delay variance;
     * ``y <= 0``: the order waits for a warehouse order not yet placed: ``W = L0 + T_|y|`` with ``T_k`` the
-    time
-      for the warehouse demand to reach ``k`` more units, ``E T = k / lambda0``. ``T`` is made of the stores'
-      own future demand: given the ``k`` units, a store's share of them is binomial, whose variance does not
-      exceed its mean, so ``T`` is taken at its mean (no variance of its own). For one-for-one Poisson stores
-      the exact share variance is ``p(1 - p)k`` against ``pk`` here (``p`` the store's share of the demand);
-      Axsäter's (1993) batch problems are reproduced within a few per cent this way, while both the Little
-      form (negative variance ``-v0 k / lambda0**3``) and the full passage-time variance (``+v0 k /
-      lambda0**3``) miss them by up to 12% and 9% when the warehouse keeps a negative reorder point.
+      time for the warehouse demand to reach ``k`` more units, ``E T = k / lambda0``. ``T`` is made of the
+      stores' own future demand: given the ``k`` units, a store's share of them is binomial, whose variance
+      does not exceed its mean, so ``T`` is taken at its mean (no variance of its own). For one-for-one
+      Poisson stores the exact share variance is ``p(1 - p)k`` against ``pk`` here (``p`` the store's share).
+      This choice (against the Little form, which gives ``T`` a negative variance, and the full passage-time
+      variance) is the one that reproduces Axsäter's (1993) batch problems with negative warehouse reorder
+      points (test_echelon: all 16 policies within 4.2%).
 
     ``Var(W) = E[W^2] - E[W]^2`` (clipped at 0).
 
@@ -1399,8 +1392,7 @@ def evaluate_two_level(
     -----
     Warehouse demand by :func:`warehouse_demand`, its state by :func:`warehouse_moments`, delay moments by
     :func:`delay_moments`; each store is then evaluated by ``models.single_site.evaluate_policy`` with
-    lead-time
-    demand from :func:`store_ltd_moments` (negative binomial for counts when over-dispersed, normal
+    lead-time demand from :func:`store_ltd_moments` (negative binomial for counts when over-dispersed, normal
     otherwise).
 
     References
@@ -1569,8 +1561,7 @@ def optimise_two_level(
     Notes
     -----
     Order quantities stay as seeded (or as fixed). For every item the warehouse reorder point ``R0`` runs over
-    a
-    grid between ``-Q0`` (no stock kept) and the LTD mean + ``SEARCH_HIGH_SDS`` sd; each candidate gives the
+    a grid between ``-Q0`` (no stock kept) and the LTD mean + ``SEARCH_HIGH_SDS`` sd; each candidate gives the
     delay moments, the stores' reorder points are re-optimised for them
     (``models.single_site.optimise_policy``
     with the stores' own cost or service mode) and the network cost (warehouse ordering + holding +
@@ -2349,8 +2340,7 @@ def leaf_policies(
         False: the two-moment fit only (fast; used inside searches).
     refine : bool
         Re-optimise ``R`` under the delay mixture (cost: golden-section / integer search; service: the
-        smallest
-        ``R`` meeting the target) starting from the moment-fit optimum.
+        smallest ``R`` meeting the target) starting from the moment-fit optimum.
 
     Returns
     -------
@@ -2370,8 +2360,7 @@ def leaf_policies(
     The lead-time demand is a mixture over the delay points ``w`` of demand over ``L + w``; each KPI is the
     weighted sum of the single-site KPIs (``models.single_site.evaluate_policy``). The two-moment version
     (one negative binomial / normal with the variance ``s**2 (L + E W) + d**2 (sL**2 + Var W)``) has too thin
-    a
-    tail when the warehouse is rarely out of stock but then for long; the mixture keeps the atom at no wait.
+    a tail when the warehouse is rarely out of stock but then for long; the mixture keeps the atom at no wait.
     """
     from dataclasses import replace
 

@@ -1,19 +1,17 @@
 """The site forest and network planning: a warehouse and the stores it supplies, planned together.
 
 * :func:`build_forest` / :func:`forest_from_itemsites` check that the supply links form a forest fed by
-suppliers
-  (every chain of upstream sites ends at a site with no upstream) and give levels (roots first), children and
-  depth. Errors are :class:`~optimiser.errors.CaseError` naming the sites.
+  suppliers (every chain of upstream sites ends at a site with no upstream) and give levels (roots first),
+  children and depth. Errors are :class:`~optimiser.errors.CaseError` naming the sites.
 * :func:`plan_network` plans every item of a case with upstream sites: single-site seeds, then the warehouse
   reorder point searched with the stores' reorder points re-optimised for each candidate
   (:func:`models.echelon.optimise_two_level`). Trees deeper than two levels are planned level by level with
-  the
-  same step (:func:`models.echelon.optimise_tree`).
+  the same step (:func:`models.echelon.optimise_tree`). Sites with neither upstream nor downstream sites are
+  planned alone.
 * :func:`evaluate_network` evaluates given policies the same way.
-* :func:`network_summary` (also returned by ``plan_network(..., return_summary=True)``): per item and root
-site,
-  how safety stock splits between the warehouse and the stores, and what the network plan saves against
-  planning each site alone.
+* :func:`network_summary` (also ``plan_network(..., return_summary=True)``): per item and root site, how
+  safety stock splits between the warehouse and the stores, and what the network plan saves against planning
+  each site alone.
 
 The policies frame has the columns of ``policies.csv`` (DEVELOPERS.md); stores carry ``expected_delay_days``
 (the mean wait at their upstream site) and their ``lead_time_days`` includes it.
