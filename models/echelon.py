@@ -1051,6 +1051,9 @@ class TwoLevelInputs:
     mode: str = "cost"
     backorder_basis: str = "per_unit"
 
+    def __post_init__(self) -> None:
+        _check_inputs(self, self.store_mean.shape, self.store_mean.shape[:1], "store_", "warehouse_")
+
     @property
     def n(self) -> int:
         return int(self.store_mean.shape[0])
@@ -1090,6 +1093,39 @@ class TwoLevelResult:
     iterations: np.ndarray
     converged: np.ndarray
     demand_method: np.ndarray
+
+
+_NONNEGATIVE = ("mean", "sd", "lead", "lead_sd", "order_cost", "holding_cost", "backorder_cost", "own_mean",
+                "own_sd")
+_MODES = ("cost", "cycle_service", "fill_rate")
+_BASES = ("per_unit", "per_unit_year")
+
+
+def _check_inputs(inp, grid_shape, item_shape, *prefixes) -> None:
+    """Shapes, signs and modes of TwoLevelInputs / TreeInputs; errors name the field, rule and value."""
+    from dataclasses import fields
+
+    if inp.mode not in _MODES:
+        raise ValueError(f"mode must be one of {_MODES}; found {inp.mode!r}")
+    if inp.backorder_basis not in _BASES:
+        raise ValueError(f"backorder_basis must be one of {_BASES}; found {inp.backorder_basis!r}")
+    if not inp.days_per_year > 0:
+        raise ValueError(f"days_per_year must be > 0; found {inp.days_per_year!r}")
+    for f in fields(inp):
+        v = getattr(inp, f.name)
+        if not isinstance(v, np.ndarray) or f.name == "parent":
+            continue
+        want = grid_shape if (v.ndim == len(grid_shape)) else item_shape
+        if v.shape != tuple(want):
+            raise ValueError(f"{f.name} must have shape {tuple(want)}; found {v.shape}")
+        base = f.name
+        for pre in prefixes:
+            base = base.removeprefix(pre)
+        if base in _NONNEGATIVE and v.dtype.kind == "f":
+            bad = np.flatnonzero(~(v >= 0).ravel() & ~np.isnan(v.ravel()) | np.isinf(v.ravel()))
+            if bad.size:
+                raise ValueError(f"{f.name} must be finite and >= 0; element {int(bad[0])} has "
+                                 f"{v.ravel()[bad[0]]!r}")
 
 
 def _store_codes(count: np.ndarray, mean: np.ndarray, sd: np.ndarray) -> np.ndarray:
@@ -1668,6 +1704,11 @@ class TreeInputs:
     days_per_year: float = 365.0
     mode: str = "cost"
     backorder_basis: str = "per_unit"
+
+    def __post_init__(self) -> None:
+        _check_inputs(self, self.active.shape, self.active.shape[:1])
+        if self.parent.shape != self.active.shape[1:]:
+            raise ValueError(f"parent must have shape {self.active.shape[1:]}; found {self.parent.shape}")
 
 
 @dataclass(frozen=True)

@@ -410,3 +410,16 @@ def test_axsater_1993_optimiser_by_simulation():
             f"{ours[i]:.3f} | {pub[i]:.3f} | {exact[i]:.2f}"
         )
     assert np.all(ours <= 1.02 * pub)
+
+
+def test_inputs_are_validated():
+    inp = axsater_inputs()
+    from dataclasses import replace
+
+    with pytest.raises(ValueError, match="store_lead must be finite and >= 0; element 3 has"):
+        replace(inp, store_lead=np.where(np.arange(inp.store_lead.size).reshape(inp.store_lead.shape) == 3, -1.0,
+                                         inp.store_lead))
+    with pytest.raises(ValueError, match=r"warehouse_lead must have shape \(8,\)"):
+        replace(inp, warehouse_lead=np.ones(7))
+    with pytest.raises(ValueError, match="mode must be one of"):
+        replace(inp, mode="cheapest")
