@@ -417,8 +417,9 @@ def test_inputs_are_validated():
     from dataclasses import replace
 
     with pytest.raises(ValueError, match="store_lead must be finite and >= 0; element 3 has"):
-        replace(inp, store_lead=np.where(np.arange(inp.store_lead.size).reshape(inp.store_lead.shape) == 3, -1.0,
-                                         inp.store_lead))
+        bad = inp.store_lead.copy()
+        bad.ravel()[3] = -1.0
+        replace(inp, store_lead=bad)
     with pytest.raises(ValueError, match=r"warehouse_lead must have shape \(8,\)"):
         replace(inp, warehouse_lead=np.ones(7))
     with pytest.raises(ValueError, match="mode must be one of"):
