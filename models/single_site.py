@@ -89,18 +89,23 @@ BISECT_STEPS = 200
 #: Newton on the per-unit-year normal cost: stop when both steps are below NEWTON_TOL (relative).
 NEWTON_TOL = 1e-11
 NEWTON_MAX_ITER = 100
+#: Newton also stops when the cost decrease a full step predicts is below NEWTON_COST_TOL·cost.
+NEWTON_COST_TOL = 1e-14
+#: Where (Q/σ)·(1 + |z_mid|) is below this, the Newton derivatives come from the small-window expansion.
+NEWTON_SMALL_Q = 1e-3
 #: Root solver for the reorder point under a shortage-fraction condition.
 ROOT_TOL = 1e-13
 ROOT_MAX_ITER = 200
-#: Service target with a jointly optimised Q: search range Q <= Q_HIGH_FACTOR·EOQ + Q_HIGH_SIGMAS·σ
-#: (reached only where the cost keeps falling in Q, e.g. a fill-rate target <= 1/2 under the per-unit basis,
-#: whose holding term h(R − μ) then falls without bound; such items are flagged NOTE_SEARCH_LIMIT).
+#: Service target with a jointly optimised Q: search range Q <= Q_HIGH_FACTOR·EOQ + Q_HIGH_SIGMAS·σ, divided
+#: by the target for fill rates (low targets call for large Q). Reached only where the cost keeps falling
+#: in Q, e.g. a fill-rate target <= 1/2 under the per-unit basis, whose holding term h(R − μ) then falls
+#: without bound; such items are flagged NOTE_SEARCH_LIMIT.
 Q_HIGH_FACTOR = 8.0
 Q_HIGH_SIGMAS = 50.0
 #: Count items, service target with a jointly optimised Q: at most this many Q values are scanned exactly.
 COUNT_SCAN_MAX = 300
-#: Below this Q/σ the window averages use the midpoint rule (second-order accurate).
-SMALL_WINDOW = 1e-4
+#: Where (Q/σ)·(1 + |z_mid|) is below this, window averages use the midpoint rule with its q² term.
+SMALL_WINDOW = 1e-3
 #: Smallest tail probability used to bound integer searches (Cantelli bound).
 MIN_TAIL = 1e-15
 
@@ -169,20 +174,31 @@ def _isf(p):
     return -special.ndtri(p)
 
 
+def _phi(z):
+    with np.errstate(under="ignore", over="ignore"):
+        return np.exp(-0.5 * z * z) * _INV_SQRT2PI
+
+
 def _avg_sf(z, q):
-    """[G(z) − G(z + q)] / q: the average of P(Z > s) over s in [z, z + q]."""
-    small = q < SMALL_WINDOW
+    """[G(z) − G(z + q)] / q: the average of P(Z > s) over s in [z, z + q].
+
+    Where q·(1 + |m|) < SMALL_WINDOW the midpoint rule with its q² term, sf(m) + m·φ(m)·q²/24
+    (m = z + q/2), replaces the difference quotient (which would lose digits to cancellation).
+    """
+    m = z + 0.5 * q
+    small = q * (1.0 + np.abs(m)) < SMALL_WINDOW
     qq = np.where(small, 1.0, q)
     wide = (normal_loss(z) - normal_loss(z + qq)) / qq
-    return np.where(small, special.ndtr(-(z + 0.5 * q)), wide)
+    return np.where(small, special.ndtr(-m) + m * _phi(m) * q * q / 24.0, wide)
 
 
 def _avg_G(z, q):
-    """[G2(z) − G2(z + q)] / q: the average of G(s) over s in [z, z + q]."""
-    small = q < SMALL_WINDOW
+    """[G2(z) − G2(z + q)] / q: the average of G(s) over s in [z, z + q] (small q: G(m) + φ(m)·q²/24)."""
+    m = z + 0.5 * q
+    small = q * (1.0 + np.abs(m)) < SMALL_WINDOW
     qq = np.where(small, 1.0, q)
     wide = (normal_loss2(z) - normal_loss2(z + qq)) / qq
-    return np.where(small, normal_loss(z + 0.5 * q), wide)
+    return np.where(small, normal_loss(m) + _phi(m) * q * q / 24.0, wide)
 
 
 def _nrm_backorders(R, Q, mu, sd):
@@ -639,6 +655,19 @@ def _tw_normal(mu, sd, D, A, h, p):
         fzz = (d1 - d0) / qa
         fzq = (d1 - fz) / qa
         fqq = (d1 - 2.0 * fq) / qa
+        small = qa * (1.0 + np.abs(za + 0.5 * qa)) < NEWTON_SMALL_Q
+        if small.any():
+            # the difference quotients cancel for a narrow window: use f = k/q + γ(m) + γ2(m)q²/24 with
+            # m = z + q/2 and the derivatives γ1 = h − (h + p)·sf, γ2 = (h + p)·φ, γ3 = −(h + p)·m·φ
+            m = za + 0.5 * qa
+            ph = (ha + pa) * _phi(m)
+            g1m = ha - (ha + pa) * special.ndtr(-m)
+            g3m = -m * ph
+            fz = np.where(small, g1m + g3m * qa * qa / 24.0, fz)
+            fq = np.where(small, -ka / (qa * qa) + 0.5 * g1m + ph * qa / 12.0 + g3m * qa * qa / 48.0, fq)
+            fzz = np.where(small, ph, fzz)
+            fzq = np.where(small, 0.5 * ph + g3m * qa / 12.0, fzq)
+            fqq = np.where(small, 2.0 * ka / qa ** 3 + ph / 3.0, fqq)
         det = fzz * fqq - fzq * fzq
         good = (fzz > 0) & (det > 0) & np.isfinite(det)
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -647,7 +676,9 @@ def _tw_normal(mu, sd, D, A, h, p):
         dz = np.where(np.isfinite(dz), dz, 0.0)
         dq = np.where(np.isfinite(dq), dq, 0.0)
         # keep q positive
-        scale = np.where(qa + dq < 0.1 * qa, 0.9 * qa / np.maximum(-dq, 1e-300), 1.0)
+        shrink = qa + dq < 0.1 * qa
+        scale = np.ones_like(qa)
+        scale[shrink] = 0.9 * qa[shrink] / -dq[shrink]
         step = np.minimum(scale, 1.0)
         accepted = np.zeros(active.size, dtype=bool)
         zn, qn = za.copy(), qa.copy()
@@ -663,6 +694,8 @@ def _tw_normal(mu, sd, D, A, h, p):
             step = np.where(accepted, step, 0.5 * step)
         small = (np.abs(zn - za) <= NEWTON_TOL * np.maximum(1.0, np.maximum(np.abs(za), qa))) & (
             np.abs(qn - qa) <= NEWTON_TOL * qa)
+        # or: the Newton decrement (the cost decrease a full step predicts) is below rounding of the cost
+        small |= good & (-(fz * dz + fq * dq) <= NEWTON_COST_TOL * np.abs(fa))
         z[active], q[active] = zn, qn
         it[active] += 1
         done = small | ~accepted
@@ -758,7 +791,7 @@ def _service_q_normal(mu, sd, D, A, h, t, mode, basis):
         return d
 
     allidx = np.arange(n)
-    q_max = Q_HIGH_FACTOR * q_eoq + Q_HIGH_SIGMAS          # search range in units of σ
+    q_max = (Q_HIGH_FACTOR * q_eoq + Q_HIGH_SIGMAS) / (t if fill else 1.0)   # search range, units of σ
     a = q_eoq.copy()
     fa = np.minimum(deriv(allidx, a), 0.0)
     b = np.minimum(np.maximum(2.0 * a, a + 1.0), q_max)
@@ -844,7 +877,7 @@ def _count_service_q(fun, D, mu, A, h, t, mode, basis, q1, sd):
     Returns (Q, at_search_limit, steps).
     """
     n = D.shape[0]
-    hi_cap = np.ceil(Q_HIGH_FACTOR * q1 + Q_HIGH_SIGMAS * sd) + 2.0
+    hi_cap = np.ceil((Q_HIGH_FACTOR * q1 + Q_HIGH_SIGMAS * sd) / (t if mode == "fill_rate" else 1.0)) + 2.0
     Q, best = _int_golden(fun, np.ones(n), hi_cap)
     AD = A * D
     if mode == "cycle_service":
@@ -965,11 +998,14 @@ def _evaluate(D, mu, sd, A, h, dist, b, R, Q, basis, it, conv, note):
         qz = Qn / s
         g1, l1 = normal_losses(z1)
         g2, l2 = normal_losses(z1 + qz)
-        small = qz < SMALL_WINDOW
+        small = qz * (1.0 + np.abs(z1 + 0.5 * qz)) < SMALL_WINDOW
         qq = np.where(small, 1.0, qz)
-        gm = normal_loss(z1 + 0.5 * qz) if small.any() else 0.0
-        sh_c = np.where(small, special.ndtr(-(z1 + 0.5 * qz)), (g1 - g2) / qq)
-        eb_c = s * np.where(small, gm, (l1 - l2) / qq)
+        sh_c = (g1 - g2) / qq
+        eb_c = (l1 - l2) / qq
+        if small.any():
+            sh_c[small] = _avg_sf(z1[small], qz[small])
+            eb_c[small] = _avg_G(z1[small], qz[small])
+        eb_c = s * eb_c
         d1 = np.maximum(mn - Rn, 0.0)
         d2 = np.maximum(mn - Rn - Qn, 0.0)
         short[nm] = np.where(pos, sh_c, (d1 - d2) / Qn)
