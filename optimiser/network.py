@@ -28,6 +28,7 @@ import pandas as pd
 
 from models import demand as md
 from models import echelon as ech
+from models import single_site as ss
 from optimiser.errors import CaseError
 
 __all__ = [
@@ -552,6 +553,11 @@ def _run(itemsites: pd.DataFrame, settings, given: np.ndarray | None, return_sum
         )
     )
     out = order.sort_values("index").drop(columns="index").reset_index(drop=True)[POLICY_COLUMNS]
+    # The network step holds store order quantities while it searches reorder points, and the single-site
+    # kernels flag such a Q as fixed; only a quantity fixed in the case (stocking.csv) deserves that note.
+    by_case = np.isfinite(table["order_quantity"].to_numpy(dtype=float))
+    note = out["note"].to_numpy(dtype=np.int64)
+    out["note"] = np.where(by_case, note, note & ~np.int64(ss.NOTE_FIXED_Q))
     if return_summary:
         summary = (
             pd.concat(summaries, ignore_index=True) if summaries else pd.DataFrame(columns=SUMMARY_COLUMNS)

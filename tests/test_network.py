@@ -187,6 +187,20 @@ def test_plan_frame_and_summary():
     np.testing.assert_allclose(tot, summary["network_cost"], rtol=1e-9)
 
 
+def test_fixed_quantity_note_only_where_the_case_fixes_it():
+    # The "order quantity fixed by the case" note must follow stocking.csv, not the network search, which
+    # holds the stores' Q internally (a planner reads the note as a statement about their data).
+    from models.single_site import NOTE_FIXED_Q
+
+    t = random_two_level(3, 3, 4, "slow", "per_unit")
+    fixed_row = int(np.nonzero(t["upstream"].to_numpy() != "")[0][0])
+    t.loc[fixed_row, "order_quantity"] = 3.0
+    pol = nw.plan_network(t, Settings())
+    flagged = (pol["note"].to_numpy(dtype=np.int64) & NOTE_FIXED_Q) != 0
+    assert flagged[fixed_row] and pol.loc[fixed_row, "order_quantity"] == 3.0
+    assert not np.delete(flagged, fixed_row).any()
+
+
 def test_evaluate_reproduces_plan():
     t = random_two_level(4, 3, 5, "fast", "per_unit_year")
     s = Settings(backorder_basis="per_unit_year")
