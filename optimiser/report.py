@@ -298,7 +298,11 @@ def _plots(result: PlanResult, folder: Path) -> list[str]:
     written = []
     totals = result.site_totals
     fig, ax = plt.subplots(figsize=(max(5.0, 0.9 * len(totals) + 2), 4))
-    bottom = np.zeros(len(totals))
+    # A component can be negative (safety-stock holding at a warehouse whose reorder point lies below its mean
+    # lead-time demand): positive parts stack upwards from 0, negative parts downwards, and a black tick marks
+    # each site's total.
+    above = np.zeros(len(totals))
+    below = np.zeros(len(totals))
     labels = {
         "ordering_cost": "ordering",
         "cycle_stock_cost": "holding, cycle stock",
@@ -307,8 +311,13 @@ def _plots(result: PlanResult, folder: Path) -> list[str]:
     }
     for column, label in labels.items():
         values = totals[column].to_numpy(dtype=float)
-        ax.bar(totals["site"], values, bottom=bottom, label=label)
-        bottom += values
+        ax.bar(totals["site"], values, bottom=np.where(values >= 0, above, below), label=label)
+        above += np.maximum(values, 0.0)
+        below += np.minimum(values, 0.0)
+    ax.scatter(totals["site"], totals["total_cost"], marker="_", s=400, color="black", zorder=3,
+               label="total")
+    if (below < 0).any():
+        ax.axhline(0.0, color="black", linewidth=0.6)
     ax.set_ylabel(f"annual cost ({result.settings.currency})".replace(" ()", ""))
     ax.set_title("Annual cost per site by component")
     ax.legend(fontsize=8)
