@@ -67,8 +67,8 @@ NOTE_ONE_FOR_ONE = 256
 
 _NOTE_TEXT = {
     NOTE_ZERO_DEMAND: "no demand: no stock, no orders",
-    NOTE_NO_INTERIOR_OPTIMUM: "backorder cost too low for an interior optimum (h·Q >= b·D): reorder point "
-                              "held at its lower limit 0",
+    NOTE_NO_INTERIOR_OPTIMUM: "backorder cost per unit short too low for an interior optimum (h·Q >= b·D, "
+                              "or the best reorder point would be negative): reorder point held at 0",
     NOTE_DETERMINISTIC: "no demand variability: deterministic lot size",
     NOTE_NOT_CONVERGED: "optimiser did not converge within its iteration limit",
     NOTE_FIXED_Q: "order quantity fixed by the case",
@@ -497,7 +497,7 @@ def _hw_normal(mu, sd, D, A, h, b, accelerate=True):
     use_cap = c2 < c1
     q = np.where(use_cap, q_cap, q)
     z = np.where(use_cap, zc, z)
-    flag = h * q >= B
+    flag = (h * q >= B) | (z <= z0)            # no solution of the R condition, or R held at 0
     R = np.where(z <= z0, 0.0, np.maximum(mu + sd * z, 0.0))
     return q * sd, R, it, conv, flag
 
@@ -536,7 +536,9 @@ def hadley_whitin(annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost, bac
     Minimises G(Q, R) = h(Q/2 + R − μ) + A·D/Q + b·D·n(R)/Q, n(R) = σ·G((R − μ)/σ), R >= 0, by alternating
     Q = √(2D[A + b·n(R)]/h) and P(X > R) = hQ/(bD) from Q = EOQ until |ΔQ| <= HW_TOL·Q (at most
     HW_MAX_ITER steps, then a bisection on dG/dQ along the optimal-R path). Where hQ >= bD the R condition
-    has no solution (no interior optimum): R is held at 0 and ``no_interior_optimum`` is set.
+    has no solution (no interior optimum; G falls without bound as R → −∞): R is held at 0 and
+    ``no_interior_optimum`` is set, as it is wherever the bound R >= 0 binds. G along the optimal-R path can
+    then have two local minima (interior, and R = 0 at Q = √(2D[A + b·n(0)]/h)); the cheaper is returned.
 
     References
     ----------

@@ -182,6 +182,7 @@ def test_per_unit_cost_matches_dense_grid_when_two_local_minima():
     assert np.all(mine <= best * (1 + 1e-9))
     np.testing.assert_allclose(mine, best, rtol=1e-6)
     assert pol.reorder_point[0] == 0.0 and np.any(pol.reorder_point > 0)
+    np.testing.assert_array_equal(pol.note & NOTE_NO_INTERIOR_OPTIMUM > 0, pol.reorder_point == 0)
 
 
 def test_plain_and_accelerated_hadley_whitin_agree():
