@@ -97,8 +97,12 @@ def _lead_time(mean: float, sd: float) -> float:
 @njit(cache=True)
 def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, dmean, dsd, lt_mean, lt_sd,
               partial, crossing, horizon, warmup, seed, heap_cap, queue_cap, stats, trace_oh, trace_bo,
-              trace_step):
+              trace_step, log_slot, order_log):
     """Simulate one item once; fills ``stats`` (S, N_STATS); returns a status code.
+
+    ``log_slot[s] >= 0`` marks a periodic-review site whose reviews are logged: ``order_log[log_slot[s], m]``
+    is set to 1 when the site's review number m (m = 0 at the first review) places an order after the
+    warm-up (reviews beyond the log's length are not logged).
 
     The event loop is written out flat, without calls that take arrays: numba reference-counts every array
     passed to a function with atomic operations, which cost more than the simulation itself.
@@ -140,6 +144,12 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
 
     # initial state: position at R + Q (or S), all of it on hand
     next_rev = np.full(n_sites, np.inf)
+    rev_count = np.zeros(n_sites, dtype=np.int64)  # reviews done at each site
+    log_len = order_log.shape[1]
+    for s in range(n_sites):  # a task run again (larger buffers) starts from a clean log
+        if log_slot[s] >= 0:
+            for m in range(log_len):
+                order_log[log_slot[s], m] = 0
     cum = np.zeros(n_sites)
     total_rate = 0.0
     any_daily = False
@@ -304,6 +314,8 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
                 if next_rev[s] > tn:
                     continue
                 next_rev[s] += review[s]
+                m_rev = rev_count[s]
+                rev_count[s] = m_rev + 1
                 if ipos[s] >= upto[s]:
                     continue
                 qty = upto[s] - ipos[s]
@@ -311,6 +323,8 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
                 if measuring:
                     stats[s, ST_ORDERS] += 1
                     stats[s, ST_ORDER_UNITS] += qty
+                    if log_slot[s] >= 0 and m_rev < log_len:
+                        order_log[log_slot[s], m_rev] = 1
                 p = parent[s]
                 if p < 0:
                     buf_s[nb] = s
@@ -443,12 +457,14 @@ def _run_task(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
 @njit(cache=True, parallel=True)
 def run_tasks(parent, active, rop, oq, review, upto, phase, model, rate, theta, dmean, dsd, lt_mean, lt_sd,
               partial, crossing, horizon, warmup, seeds, heap_cap, queue_cap, task_mask, trace_row,
-              trace_step, trace_oh, trace_bo, stats, status):
+              trace_step, trace_oh, trace_bo, stats, status, log_slot, order_log):
     """Run every (replication, item) task where ``task_mask`` is set, in parallel.
 
     Arrays per item are (n, S); ``seeds`` is (K, n); ``stats`` is (K, n, S, N_STATS) and ``status`` (K, n).
     ``trace_row[i] >= 0`` records on hand and backorders of item i on replication 0 every ``trace_step`` days
     from the end of the warm-up into ``trace_oh[trace_row[i]]`` / ``trace_bo[...]`` (n_samples, S).
+    ``log_slot`` (n, S) and ``order_log`` (K, n_slots, E) uint8: the review log of periodic sites (see
+    :func:`_run_task`); pass ``log_slot`` all -1 and an (K, 0, 0) log to log nothing.
     """
     n_rep, n_items = seeds.shape
     dummy = np.zeros((0, parent.shape[1]))
@@ -466,13 +482,13 @@ def run_tasks(parent, active, rop, oq, review, upto, phase, model, rate, theta, 
         status[k, i] = _run_task(parent[i], active[i], rop[i], oq[i], review[i], upto[i], phase[i], model[i],
                                  rate[i], theta[i], dmean[i], dsd[i], lt_mean[i], lt_sd[i], partial, crossing,
                                  horizon, warmup, seeds[k, i], heap_cap, queue_cap, stats[k, i], toh, tbo,
-                                 trace_step)
+                                 trace_step, log_slot[i], order_log[k])
 
 
 @njit(cache=True)
 def run_tasks_serial(parent, active, rop, oq, review, upto, phase, model, rate, theta, dmean, dsd, lt_mean,
                      lt_sd, partial, crossing, horizon, warmup, seeds, heap_cap, queue_cap, task_mask,
-                     trace_row, trace_step, trace_oh, trace_bo, stats, status):
+                     trace_row, trace_step, trace_oh, trace_bo, stats, status, log_slot, order_log):
     """Same as :func:`run_tasks` on one thread (used to measure what the parallel loop pays)."""
     n_rep, n_items = seeds.shape
     dummy = np.zeros((0, parent.shape[1]))
@@ -490,4 +506,4 @@ def run_tasks_serial(parent, active, rop, oq, review, upto, phase, model, rate, 
         status[k, i] = _run_task(parent[i], active[i], rop[i], oq[i], review[i], upto[i], phase[i], model[i],
                                  rate[i], theta[i], dmean[i], dsd[i], lt_mean[i], lt_sd[i], partial, crossing,
                                  horizon, warmup, seeds[k, i], heap_cap, queue_cap, stats[k, i], toh, tbo,
-                                 trace_step)
+                                 trace_step, log_slot[i], order_log[k])

@@ -36,7 +36,7 @@ import tempfile
 import time
 import warnings
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -64,6 +64,7 @@ CONFIDENCE = 0.95
 HEAP_CAPACITY = 64  # first capacity of the pending-shipment heap per task (doubled on overflow)
 QUEUE_CAPACITY = 32  # first capacity of each site's FCFS queue per task (doubled on overflow)
 MAX_CAPACITY = 1 << 22  # give up beyond this many pending shipments / waiting orders
+MAX_REVIEW_LOG = 1 << 28  # most (replication, periodic item-site, review) entries logged (bytes)
 NEVER_ORDERS = -(1 << 60)  # reorder point of a site with Q = 0: the position never falls to it
 
 
@@ -183,6 +184,29 @@ class NetworkSimulation:
     trace_backorders: np.ndarray
     trace_items: np.ndarray
     retries: int = 0
+    review_slot: np.ndarray | None = None  # (n, S) row of each periodic-review site in review_orders; -1 none
+    review_orders: np.ndarray | None = None  # (K, n_slots, E) uint8: review m of the slot placed an order
+
+    def review_order_times(self, review_period: np.ndarray, review_phase: np.ndarray | None = None
+                           ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Every logged review that placed an order after the warm-up: (replication, item, site, day).
+
+        ``review_period`` and ``review_phase`` are the (n, S) grids given to the simulation; review m of a
+        site happens at ``first + m * T`` with ``first`` the phase (or T when the phase is 0).
+        Returns ``(k, i, s, day)``.
+        """
+        if self.review_orders is None or self.review_slot is None or self.review_orders.size == 0:
+            e = np.zeros(0, dtype=np.int64)
+            return e, e, e, np.zeros(0)
+        slot_i, slot_s = np.nonzero(self.review_slot >= 0)
+        order = np.argsort(self.review_slot[slot_i, slot_s])
+        slot_i, slot_s = slot_i[order], slot_s[order]
+        k, slot, m = np.nonzero(self.review_orders)
+        per = np.asarray(review_period, dtype=float)[slot_i[slot], slot_s[slot]]
+        ph = (np.zeros_like(per) if review_phase is None
+              else np.asarray(review_phase, dtype=float)[slot_i[slot], slot_s[slot]])
+        first = np.where(ph > 0, ph, per)
+        return k, slot_i[slot], slot_s[slot], first + m * per
 
     def mean(self, name: str) -> np.ndarray:
         """Mean over replications of KPI ``name`` -> (n, S)."""
@@ -310,7 +334,9 @@ def simulate_network_arrays(
     Returns
     -------
     NetworkSimulation
-        Per-replication KPIs of shape (K, n, S); ``.mean(name)``, ``.half_width(name)``.
+        Per-replication KPIs of shape (K, n, S); ``.mean(name)``, ``.half_width(name)``; ``review_orders``
+        logs which reviews of the periodic-review sites placed an order after the warm-up
+        (``.review_order_times(review_period, review_phase)`` turns it into days).
 
     Examples
     --------
@@ -426,6 +452,18 @@ def simulate_network_arrays(
 
     stats = np.zeros((k_rep, n, s_count, _k.N_STATS))
     status = np.zeros((k_rep, n), dtype=np.int64)
+    # review log of the periodic sites: which reviews placed an order (for shared order costs of families)
+    logged = act & periodic
+    log_slot = np.full((n, s_count), -1, dtype=np.int64)
+    log_slot[logged] = np.arange(int(logged.sum()))
+    first = np.where(phase > 0, phase, per)
+    log_len = int(np.max(np.floor((horizon_days - first[logged]) / per[logged])) + 1) if logged.any() else 0
+    log_len = max(log_len, 0)
+    if k_rep * int(logged.sum()) * log_len > MAX_REVIEW_LOG:
+        raise ValueError(f"simulation: the review log of the periodic sites would hold "
+                         f"{k_rep * int(logged.sum()) * log_len} entries (limit {MAX_REVIEW_LOG}); use fewer "
+                         "years or replications, or longer review intervals")
+    order_log = np.zeros((k_rep, int(logged.sum()), log_len), dtype=np.uint8)
     runner = _k.run_tasks if parallel else _k.run_tasks_serial
     caps = [HEAP_CAPACITY, QUEUE_CAPACITY]
     retries = 0
@@ -437,7 +475,7 @@ def simulate_network_arrays(
             runner(par, act, rop, oq, per, upto, phase, model, rate, theta, dmean, dsd, lt_m, lt_s,
                    bool(partial_shipments), bool(orders_cross), float(horizon_days), float(warmup_days),
                    seeds, caps[0], caps[1], mask, trace_row, float(trace_step_days), trace_oh, trace_bo,
-                   stats, status)
+                   stats, status, log_slot, order_log)
             bad = status != _k.STATUS_OK
             if not bad.any():
                 break
@@ -454,8 +492,9 @@ def simulate_network_arrays(
         if progress is not None:
             progress(done if len(blocks) > 1 else k_rep, k_rep)
 
-    return _summarise(stats, act, horizon_days - warmup_days, seeds, tr_items, trace_oh, trace_bo,
-                      warmup_days, trace_step_days, n_samples, retries)
+    sim = _summarise(stats, act, horizon_days - warmup_days, seeds, tr_items, trace_oh, trace_bo,
+                     warmup_days, trace_step_days, n_samples, retries)
+    return replace(sim, review_slot=log_slot, review_orders=order_log)
 
 
 def replication_seeds(seed: int, replications: int, n_items: int) -> np.ndarray:
@@ -570,11 +609,14 @@ class SimulationOutcome:
         ``item, site, day, on_hand, backorders`` sampled on replication 0 (empty when no item was traced).
     info : dict
         Settings of the run and totals (demand events, seconds, ...).
+    families : DataFrame or None
+        One row per joint replenishment family (see :func:`family_costs`); None without families.
     """
 
     table: pd.DataFrame
     traces: pd.DataFrame
     info: dict[str, Any]
+    families: pd.DataFrame | None = None
 
 
 def _site_order(itemsites) -> tuple[list[str], dict[str, int], np.ndarray]:
@@ -606,6 +648,7 @@ def run_simulation(
     trace_items: list[str] | None = None,
     trace_step_days: float = 1.0,
     progress: Callable[[str], None] | None = None,
+    families: pd.DataFrame | None = None,
 ) -> SimulationOutcome:
     """Simulate a policies frame on the network of an item-site table.
 
@@ -639,6 +682,13 @@ def run_simulation(
         Items whose on hand and backorders per site are recorded (replication 0).
     progress : callable, optional
         Receives a line of text after each replication.
+    families : DataFrame, optional
+        Joint replenishment families sharing an order cost, one row per grouped (site, item):
+        ``family, site, item, base_cycle_days, major_cost`` (the shared cost per joint order) and
+        ``line_cost`` (per item order); optional planned figures ``cycle_multiple, annual_cost``
+        (``groups.csv``). The rows must be periodic-review rows of ``policies``. Their ordering cost is the
+        line cost per item order plus a share of the family's shared cost, charged once per base cycle in
+        which at least one item of the family orders (see :func:`family_costs`).
 
     Returns
     -------
@@ -776,6 +826,14 @@ def run_simulation(
         "store_delay_sd_days": np.where(parent[jj] >= 0, rows(sim.store_delay_sd), 0.0),
     }
     per_rep["ordering_cost"] = per_rep["orders_per_year"] * order_cost
+    fam_table = None
+    fam_cols: dict[str, np.ndarray] = {}
+    if families is not None and len(families):
+        fam_table, fam_cols = family_costs(sim, families, table, periodic, review, ii, jj,
+                                           per_rep["orders_per_year"], dpy)
+        grouped = fam_cols["grouped"]
+        per_rep["ordering_cost"] = np.where(grouped, fam_cols["line_cost"] + fam_cols["shared_cost"],
+                                            per_rep["ordering_cost"])
     per_rep["holding_cost"] = per_rep["on_hand"] * hold
     # backorder cost on customer demand only: store orders waiting at a warehouse cost through the stores
     if settings.backorder_basis == "per_unit":
@@ -783,6 +841,13 @@ def run_simulation(
     else:
         per_rep["backorder_cost"] = rows(sim.customer_backorders) * bcost
     per_rep["total_cost"] = per_rep["ordering_cost"] + per_rep["holding_cost"] + per_rep["backorder_cost"]
+    if fam_table is not None:  # family totals a year, replication by replication
+        sel = np.nonzero(fam_cols["family_index"] >= 0)[0]
+        for name in ("holding_cost", "backorder_cost", "total_cost"):
+            tot = np.zeros((per_rep[name].shape[0], len(fam_table)))
+            np.add.at(tot, (slice(None), fam_cols["family_index"][sel]), np.nan_to_num(per_rep[name][:, sel]))
+            fam_table[name] = tot.mean(axis=0)
+            fam_table[f"{name}_ci"] = confidence_half_width(tot, axis=0)
 
     out = pd.DataFrame({"site": table["site"].to_numpy(object), "item": table["item"].to_numpy(object)})
     out["reorder_point"] = np.where(periodic, np.nan, r_col.to_numpy(float))
@@ -796,11 +861,28 @@ def run_simulation(
     for name in KPI_COLUMNS:
         out[name] = _mean0(per_rep[name])
         out[f"{name}_ci"] = confidence_half_width(per_rep[name], axis=0)
-    flags = [[] for _ in range(len(out))]
+    grouped = fam_cols["grouped"] if fam_table is not None else np.zeros(len(out), dtype=bool)
+    planned_cols: dict[str, np.ndarray] = {}
     for name, col in PLANNED_COLUMNS.items():
-        if col not in merged.columns:
+        if col in merged.columns:
+            # for grouped rows the (R, Q) plan's figures do not apply: the grouping's are used below
+            planned_cols[name] = np.where(grouped, np.nan,
+                                          pd.to_numeric(merged[col], errors="coerce").to_numpy(float))
+    if fam_table is not None:
+        out["family"] = np.where(grouped, fam_cols["family"], "")
+        for name in ("line_cost", "shared_cost"):
+            out[name] = np.where(grouped, _mean0(fam_cols[name]), np.nan)
+            out[f"{name}_ci"] = np.where(grouped, confidence_half_width(fam_cols[name], axis=0), np.nan)
+        for name, values in (("orders_per_year", fam_cols["planned_orders_per_year"]),
+                             ("ordering_cost", fam_cols["planned_ordering_cost"]),
+                             ("total_cost", fam_cols["planned_annual_cost"])):
+            base = planned_cols.get(name, np.full(len(out), np.nan))
+            planned_cols[name] = np.where(grouped, values, base)
+    flags = [[] for _ in range(len(out))]
+    for name in PLANNED_COLUMNS:
+        if name not in planned_cols:
             continue
-        planned = pd.to_numeric(merged[col], errors="coerce").to_numpy(float)
+        planned = planned_cols[name]
         out[f"planned_{name}"] = planned
         lo = out[name].to_numpy() - out[f"{name}_ci"].to_numpy()
         hi = out[name].to_numpy() + out[f"{name}_ci"].to_numpy()
@@ -829,7 +911,202 @@ def run_simulation(
         "seconds": round(time.perf_counter() - t_start, 3), "capacity_retries": sim.retries,
         "traced_items": tr,
     }
-    return SimulationOutcome(table=out, traces=traces, info=info)
+    return SimulationOutcome(table=out, traces=traces, info=info, families=fam_table)
+
+
+FAMILY_COLUMNS = ["family", "site", "base_cycle_days", "major_cost"]  # required in ``families``
+MULTIPLE_TOL = 1e-3  # an item's interval must be within this many base cycles of a whole multiple
+DUE_CYCLES_LIMIT = 100_000  # planned joint orders: base cycles scanned for "some item due"
+
+
+def _due_share(multiples: np.ndarray) -> float:
+    """Share of base cycles b = 1, 2, ... in which at least one item is due (some k_i divides b)."""
+    k = np.asarray(multiples, dtype=np.int64)
+    if k.size == 0:
+        return 0.0
+    period = int(np.lcm.reduce(k))
+    span = min(period if period > 0 else DUE_CYCLES_LIMIT, DUE_CYCLES_LIMIT)
+    b = np.arange(1, span + 1)
+    return float(np.mean(np.any(b[:, None] % k[None, :] == 0, axis=1)))
+
+
+def family_costs(sim: NetworkSimulation, families: pd.DataFrame, table: pd.DataFrame, periodic: np.ndarray,
+                 review: np.ndarray, ii: np.ndarray, jj: np.ndarray, orders_per_year: np.ndarray,
+                 days_per_year: float) -> tuple[pd.DataFrame, dict[str, np.ndarray]]:
+    """Shared (major) and line (minor) ordering costs of joint replenishment families, per replication.
+
+    Parameters
+    ----------
+    sim : NetworkSimulation
+        The simulation, with its review log (``review_orders``).
+    families : DataFrame
+        One row per grouped (site, item): ``family, site, item, base_cycle_days, major_cost, line_cost`` and
+        optionally ``cycle_multiple, annual_cost`` (planned, from ``groups.csv``).
+    table : DataFrame
+        The simulated item-site rows (``site, item``).
+    periodic : ndarray of bool, (rows,)
+        Rows under periodic review.
+    review : ndarray, (n, S)
+        The review periods given to the simulation (days).
+    ii, jj : ndarray of int, (rows,)
+        Item and site index of every row.
+    orders_per_year : ndarray, (K, rows)
+        Simulated item orders per year per replication.
+    days_per_year : float
+
+    Returns
+    -------
+    families : DataFrame
+        One row per family: ``family, site, items, base_cycle_days, major_cost`` (per joint order), then
+        simulated ``orders_per_year`` (joint orders), ``shared_cost``, ``line_cost``, ``ordering_cost`` (each
+        a year, with ``_ci``) and the planned ``planned_orders_per_year`` (base cycles in which some item is
+        due), ``planned_shared_cost`` (S/T, as the grouping model charges it), ``planned_line_cost``
+        (sum of s_i/(k_i T)), ``planned_ordering_cost``, ``planned_grouped_cost`` (sum of ``annual_cost``).
+    columns : dict
+        Per row: ``grouped`` (bool), ``family`` (name), ``family_index`` (-1 where not grouped),
+        ``line_cost`` and ``shared_cost`` (K, rows), ``planned_orders_per_year``, ``planned_ordering_cost``,
+        ``planned_annual_cost``.
+
+    Examples
+    --------
+    >>> fam, cols = family_costs(sim, families, table, periodic, review, ii, jj, opy, 365.0)  # doctest: +SKIP
+
+    Notes
+    -----
+    A joint order is a base cycle (review epoch b = round(day / T)) in which at least one item of the family
+    places an order; the family pays S for each. Items are reviewed at multiples of their interval k_i T
+    from day 0, so their reviews fall on base-cycle epochs; whether a family orders in a cycle is read from
+    the simulation's review log, replication by replication. Simulated family ordering cost a year =
+    (S x joint orders + sum_i s_i x orders_i) / measured years. The shared cost is allocated to the items
+    of a family in proportion to their orders in the replication (the grouping model's allocation, in
+    proportion to 1/k_i, is the same rule when every review orders). Planned joint orders a year =
+    (share of base cycles b in which some k_i divides b) / T; the grouping model charges S every base
+    cycle (S/T), which is the same when some k_i = 1.
+
+    References
+    ----------
+    Khouja, M., Goyal, S., "A review of the joint replenishment problem literature: 1989-2005", European
+    Journal of Operational Research 186, 2008 (the cost structure S + sum s_i).
+    """
+    missing = [c for c in (*FAMILY_COLUMNS, "item", "line_cost") if c not in families.columns]
+    if missing:
+        raise ValueError(f"families: missing column(s) {missing}")
+    fam = families.copy()
+    fam["site"] = fam["site"].astype(str)
+    fam["item"] = fam["item"].astype(str)
+    if fam.duplicated(["site", "item"]).any():
+        raise ValueError("families: more than one row for some (site, item)")
+    rows = len(table)
+    key = table[["site", "item"]].astype(str).reset_index(drop=True).reset_index()
+    joined = fam.merge(key, on=["site", "item"], how="left")
+    if joined["index"].isna().any():
+        r = joined[joined["index"].isna()].iloc[0]
+        raise ValueError(f"families: item {r['item']!r} at site {r['site']!r} is not simulated")
+    row = joined["index"].to_numpy(np.int64)
+    if not np.all(periodic[row]):
+        r = joined[~periodic[row]].iloc[0]
+        raise ValueError(f"families: item {r['item']!r} at site {r['site']!r} of family {r['family']!r} has "
+                         "no order interval and order-up-to level")
+    names = list(dict.fromkeys(joined["family"].astype(str)))
+    f_of = np.array([names.index(str(v)) for v in joined["family"]], dtype=np.int64)
+    n_fam = len(names)
+    base = np.full(n_fam, np.nan)
+    major = np.full(n_fam, np.nan)
+    for col, target in (("base_cycle_days", base), ("major_cost", major)):
+        vals = pd.to_numeric(joined[col], errors="coerce").to_numpy(float)
+        for f in range(n_fam):
+            v = np.unique(vals[f_of == f])
+            if v.size != 1 or not np.isfinite(v[0]) or v[0] < 0 or (col == "base_cycle_days" and v[0] <= 0):
+                raise ValueError(f"families: family {names[f]!r} needs one {col} (finite, "
+                                 f"{'> 0' if col == 'base_cycle_days' else '>= 0'}); got {v.tolist()}")
+            target[f] = v[0]
+    line = pd.to_numeric(joined["line_cost"], errors="coerce").to_numpy(float)
+    if np.any(~np.isfinite(line) | (line < 0)):
+        raise ValueError("families: line_cost must be finite and >= 0")
+    interval = review[ii[row], jj[row]]
+    ratio = interval / base[f_of]
+    mult = np.round(ratio)
+    if np.any((mult < 1) | (np.abs(ratio - mult) > MULTIPLE_TOL)):
+        r = int(np.nonzero((mult < 1) | (np.abs(ratio - mult) > MULTIPLE_TOL))[0][0])
+        raise ValueError(f"families: item {joined['item'].iloc[r]!r} at site {joined['site'].iloc[r]!r}: "
+                         f"order interval {interval[r]:g} days is not a whole multiple of the family's base "
+                         f"cycle {base[f_of[r]]:g} days")
+    mult = mult.astype(np.int64)
+
+    grouped = np.zeros(rows, dtype=bool)
+    grouped[row] = True
+    fam_index = np.full(rows, -1, dtype=np.int64)
+    fam_index[row] = f_of
+    fam_name = np.full(rows, "", dtype=object)
+    fam_name[row] = [names[f] for f in f_of]
+    line_row = np.zeros(rows)
+    line_row[row] = line
+    k_rep = orders_per_year.shape[0]
+    years = sim.measured_days / days_per_year
+
+    # joint orders: distinct (replication, family, base cycle) among the reviews that ordered
+    k, it, st, day = sim.review_order_times(review)
+    row_of = np.full(review.shape, -1, dtype=np.int64)
+    row_of[ii, jj] = np.arange(rows)
+    r_ev = row_of[it, st]
+    f_ev = np.where(r_ev >= 0, fam_index[np.maximum(r_ev, 0)], -1)
+    keep = f_ev >= 0
+    k, f_ev, day = k[keep], f_ev[keep], day[keep]
+    b = np.rint(day / base[f_ev]).astype(np.int64)
+    span = int(b.max()) + 1 if b.size else 1
+    uniq = np.unique((k * n_fam + f_ev) * span + b)
+    joint = np.bincount(uniq // span, minlength=k_rep * n_fam).reshape(k_rep, n_fam).astype(float)
+    joint_per_year = joint / years
+
+    orders = np.where(grouped, orders_per_year, 0.0)
+    fam_orders = np.zeros((k_rep, n_fam))
+    np.add.at(fam_orders, (slice(None), f_of), orders[:, row])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        share = np.where(fam_orders[:, fam_index.clip(0)] > 0,
+                         orders / np.where(fam_orders[:, fam_index.clip(0)] > 0,
+                                           fam_orders[:, fam_index.clip(0)], 1.0), 0.0)
+    shared_fam = major[None, :] * joint_per_year  # (K, F)
+    shared_row = np.where(grouped, shared_fam[:, fam_index.clip(0)] * share, 0.0)
+    line_cost = np.where(grouped, orders * line_row, 0.0)
+    line_fam = np.zeros((k_rep, n_fam))
+    np.add.at(line_fam, (slice(None), f_of), line_cost[:, row])
+
+    # planned figures of the grouping (every review orders)
+    inv_k = 1.0 / mult
+    sum_inv = np.bincount(f_of, weights=inv_k, minlength=n_fam)
+    planned_orders = np.full(rows, np.nan)
+    planned_orders[row] = days_per_year / interval
+    planned_line_item = line * days_per_year / interval
+    planned_ordering = np.full(rows, np.nan)
+    planned_ordering[row] = (planned_line_item
+                             + major[f_of] * days_per_year / base[f_of] * inv_k / sum_inv[f_of])
+    planned_annual = np.full(rows, np.nan)
+    if "annual_cost" in joined:
+        planned_annual[row] = pd.to_numeric(joined["annual_cost"], errors="coerce").to_numpy(float)
+
+    recs = []
+    for f, name in enumerate(names):
+        sel = f_of == f
+        rec: dict[str, Any] = {
+            "family": name, "site": ",".join(dict.fromkeys(joined.loc[sel, "site"])),
+            "items": int(sel.sum()), "base_cycle_days": base[f], "major_cost": major[f],
+        }
+        for label, per in (("orders_per_year", joint_per_year[:, f]), ("shared_cost", shared_fam[:, f]),
+                           ("line_cost", line_fam[:, f]),
+                           ("ordering_cost", shared_fam[:, f] + line_fam[:, f])):
+            rec[label] = float(np.mean(per))
+            rec[f"{label}_ci"] = float(confidence_half_width(per[:, None], axis=0)[0])
+        rec["planned_orders_per_year"] = _due_share(mult[sel]) * days_per_year / base[f]
+        rec["planned_shared_cost"] = major[f] * days_per_year / base[f]
+        rec["planned_line_cost"] = float(planned_line_item[sel].sum())
+        rec["planned_ordering_cost"] = rec["planned_shared_cost"] + rec["planned_line_cost"]
+        rec["planned_grouped_cost"] = float(planned_annual[row][sel].sum()) if "annual_cost" in joined \
+            else np.nan
+        recs.append(rec)
+    columns = {"grouped": grouped, "family": fam_name, "family_index": fam_index, "line_cost": line_cost,
+               "shared_cost": shared_row, "planned_orders_per_year": planned_orders,
+               "planned_ordering_cost": planned_ordering, "planned_annual_cost": planned_annual}
+    return pd.DataFrame(recs), columns
 
 
 def _mean0(a: np.ndarray) -> np.ndarray:
@@ -1006,6 +1283,8 @@ def write_simulation(outcome: SimulationOutcome, out_dir: str | Path, *, case_na
             "network": _totals(tab),
             "sites": {str(site): _totals(part) for site, part in tab.groupby("site", sort=False)},
         }
+        if outcome.families is not None:
+            summary["families"] = outcome.families.to_dict(orient="records")
         (temp / "summary.json").write_text(json.dumps(_clean(summary), indent=2, ensure_ascii=False) + "\n",
                                            encoding="utf-8")
         written.append("summary.json")
@@ -1085,7 +1364,8 @@ def _merge_groups(given, path: Path, itemsites):
     missing = [c for c in need if c not in groups.columns]
     if missing:
         raise ValueError(f"{path.name}: missing column(s) {', '.join(missing)}")
-    groups = groups[need].copy()
+    extra = [c for c in ("family", "base_cycle_days", "cycle_multiple", "annual_cost") if c in groups.columns]
+    groups = groups[need + extra].copy()
     for c in ("order_interval_days", "order_up_to"):
         groups[c] = pd.to_numeric(groups[c], errors="coerce")
     groups = groups[np.isfinite(groups["order_interval_days"]) & np.isfinite(groups["order_up_to"])]
@@ -1098,7 +1378,61 @@ def _merge_groups(given, path: Path, itemsites):
         raise ValueError(f"{path.name}: more than one row for some site and item")
     if (groups["order_interval_days"] <= 0).any() or (groups["order_up_to"] < 0).any():
         raise ValueError(f"{path.name}: order_interval_days must be > 0 and order_up_to >= 0")
-    return given.merge(groups, on=["site", "item"], how="left")
+    return given.merge(groups[need], on=["site", "item"], how="left"), groups
+
+
+def group_families(case: Any, itemsites: pd.DataFrame, groups: pd.DataFrame) -> pd.DataFrame | None:
+    """The shared and line order costs of the families in a groups table, from the case.
+
+    Parameters
+    ----------
+    case : Case
+        The case the groups were made for.
+    itemsites : DataFrame
+        Its item-site table.
+    groups : DataFrame
+        ``groups.csv`` rows with ``family, site, item, base_cycle_days`` (rows without an interval dropped).
+
+    Returns
+    -------
+    DataFrame or None
+        ``family, site, item, base_cycle_days, major_cost, line_cost`` (and ``cycle_multiple, annual_cost``
+        where the groups give them) for :func:`run_simulation`; None when the groups name no family.
+
+    Examples
+    --------
+    >>> group_families(case, table, pd.read_csv("out/groups/groups.csv"))  # doctest: +SKIP
+
+    Notes
+    -----
+    A supplier family ``site/supplier`` shares the supplier's ``order_cost``; each item pays its
+    ``line_cost`` (``items.csv``, else ``suppliers.csv``). A delivery family ``site<-upstream`` shares the
+    site's ``delivery_cost`` with no line cost. A family that rides a shared run (``runs.csv``) is
+    simulated with its supplier's order cost as the shared cost (the run's cost split is not simulated).
+
+    References
+    ----------
+    None (case conventions of this project).
+    """
+    from optimiser.grouping import _families
+
+    if "family" not in groups.columns or "base_cycle_days" not in groups.columns:
+        return None
+    known = {}
+    for f in _families(case, itemsites, deliveries=True):
+        for item, minor in zip(f["rows"]["item"], f["minor"], strict=True):
+            known[(f["family"], str(f["site"]), str(item))] = (f["major"], float(minor))
+    recs = []
+    for r in groups.itertuples(index=False):
+        key = (str(r.family), str(r.site), str(r.item))
+        if key not in known:
+            raise ValueError(f"family {r.family!r} does not hold item {r.item!r} at site {r.site!r} in this "
+                             "case")
+        major, minor = known[key]
+        recs.append({"family": key[0], "site": key[1], "item": key[2], "base_cycle_days": r.base_cycle_days,
+                     "major_cost": major, "line_cost": minor,
+                     **{c: getattr(r, c) for c in ("cycle_multiple", "annual_cost") if c in groups.columns}})
+    return pd.DataFrame(recs) if recs else None
 
 
 def run(args: argparse.Namespace) -> int:
@@ -1129,10 +1463,12 @@ def run(args: argparse.Namespace) -> int:
         extra["item"] = extra["item"].str.strip()
         given = given.merge(extra.drop_duplicates(["site", "item"]), on=["site", "item"], how="left")
     itemsites = build_itemsites(case)
+    families = None
     if args.groups is not None:
         say(f"reading groups {args.groups}")
         try:
-            given = _merge_groups(given, args.groups, itemsites)
+            given, groups = _merge_groups(given, args.groups, itemsites)
+            families = group_families(case, itemsites, groups)
         except ValueError as exc:
             print(f"rqnet: cannot simulate: {exc}", file=sys.stderr)
             print("rqnet: nothing was written", file=sys.stderr)
@@ -1145,7 +1481,7 @@ def run(args: argparse.Namespace) -> int:
             itemsites, given, case.settings, years=args.years, warmup_years=args.warmup_years,
             replications=args.replications, seed=args.seed, partial_shipments=not args.whole_orders,
             orders_cross=args.orders_cross, demand_model=args.demand.replace("-", "_"), trace_items=trace,
-            progress=say,
+            progress=say, families=families,
         )
     except ValueError as exc:
         print(f"rqnet: cannot simulate: {exc}", file=sys.stderr)
@@ -1170,6 +1506,12 @@ def run(args: argparse.Namespace) -> int:
         line = (f"  {str(site):<16} {fill:>9} {t['on_hand']:>10,.0f} {t['backorders']:>10,.1f} "
                 f"{t['total_cost']:>13,.0f}")
         print(line + (f" {t['planned_total_cost']:>13,.0f}" if planned else ""))
+    if outcome.families is not None:
+        print(f"  {'family (ordering together)':<32} {'joint orders/yr':>15} {'ordering cost':>13} "
+              f"{'planned':>10}")
+        for rec in outcome.families.itertuples(index=False):
+            print(f"  {str(rec.family):<32} {rec.orders_per_year:>15,.1f} {rec.ordering_cost:>13,.0f} "
+                  f"{rec.planned_ordering_cost:>10,.0f}")
     off = int((tab["outside_interval"] != "").sum())
     print(f"{off} item-site(s) with a planned figure outside the simulation's 95% interval")
     print(f"results in {args.out}")

@@ -671,3 +671,117 @@ def test_rqnet_simulate_with_groups(case_writer, tmp_path):
     assert abs(frame.loc[("wh", "b"), "orders_per_year"] - 360 / 14) < 0.3
     groups.write_text("family,site,item,order_interval_days,order_up_to\nf,s2,b,7,40\n", encoding="utf-8")
     assert main(args) == 2  # b is not stocked at s2
+
+
+def test_rqnet_simulate_groups_share_the_supplier_order_cost(case_writer, tmp_path):
+    """Family wh/sup1 of the test case: shared cost 50 per joint order, line cost 5 per item order
+    (suppliers.csv). a every 7 days, b every 14: every review orders (store orders reach the warehouse every
+    few days), so the family pays 50 x 360/7 + 5 x (360/7 + 360/14) a year, not (50 + 5) per item order
+    (Goyal 1974, the joint order cost S + sum s_i)."""
+    from optimiser.cli import main
+
+    folder = case_writer()
+    rows = [("wh", "a", 200, 150, {}), ("wh", "b", 40, 30, {}), ("wh", "c", 5, 3, {}),
+            ("s1", "a", 30, 40, {}), ("s1", "b", 8, 10, {}), ("s2", "a", 30, 30, {}), ("s2", "c", 1, 2, {})]
+    pol = _policies_file(tmp_path, rows)
+    groups = tmp_path / "groups.csv"
+    groups.write_text("family,site,item,base_cycle_days,cycle_multiple,order_interval_days,order_up_to,"
+                      "annual_cost\nwh/sup1,wh,a,7,1,7,400,900\nwh/sup1,wh,b,7,2,14,120,300\n",
+                      encoding="utf-8")
+    out = tmp_path / "sim"
+    args = ["simulate", str(folder), "--policies", str(pol), "--groups", str(groups), "--out", str(out),
+            "--years", "10", "--replications", "3", "--seed", "2", "-q", "--no-plots"]
+    assert main(args) == 0
+    summary = json.loads((out / "summary.json").read_text())
+    (fam,) = summary["families"]
+    assert fam["family"] == "wh/sup1" and fam["major_cost"] == 50.0
+    closed = 50 * 360 / 7 + 5 * (360 / 7 + 360 / 14)
+    assert abs(fam["ordering_cost"] - closed) < 0.01 * closed
+    assert fam["planned_ordering_cost"] == pytest.approx(closed)
+    assert fam["planned_grouped_cost"] == pytest.approx(1200.0)
+    frame = pd.read_csv(out / "simulation.csv").set_index(["site", "item"])
+    assert frame.loc[("wh", "a"), "family"] == "wh/sup1"
+    assert frame.loc[("wh", "a"), "planned_total_cost"] == 900
+    grouped_cost = frame.loc[("wh", ["a", "b"]), "ordering_cost"].sum()
+    assert grouped_cost == pytest.approx(fam["ordering_cost"], rel=1e-5)
+    # item c (not grouped) still pays its supplier's full order cost per order
+    c = frame.loc[("wh", "c")]
+    assert c["ordering_cost"] == pytest.approx(c["orders_per_year"] * 80.0, rel=1e-5)  # csv: 6 digits
+
+
+# ----------------------------------------------------------------------------------------------------------
+# joint replenishment families: the shared (major) order cost is paid once per base cycle with an order
+# ----------------------------------------------------------------------------------------------------------
+def _family_case(rate_a, rate_b, base=5.0):
+    """One site, items a (every base cycle) and b (every second), Poisson demand; invented data."""
+    from types import SimpleNamespace
+
+    table = pd.DataFrame({
+        "site": ["wh", "wh", "wh"], "item": ["a", "b", "c"], "upstream": ["", "", ""],
+        "daily_mean": [rate_a, rate_b, 1.0], "daily_sd": np.sqrt([rate_a, rate_b, 1.0]),
+        "lead_days": [3.0, 3.0, 3.0], "lead_days_sd": [0.0, 0.0, 0.0], "order_cost": [55.0, 53.0, 20.0],
+        "holding_cost": [2.0, 1.0, 1.0], "backorder_cost": [10.0, 10.0, 10.0],
+    })
+    pol = pd.DataFrame({"site": ["wh"] * 3, "item": ["a", "b", "c"], "reorder_point": [np.nan, np.nan, 4.0],
+                        "order_quantity": [np.nan, np.nan, 10.0],
+                        "order_interval_days": [base, 2 * base, np.nan],
+                        "order_up_to": [rate_a * (base + 3) + 5, rate_b * (2 * base + 3) + 5, np.nan]})
+    fams = pd.DataFrame({"family": ["wh/s1", "wh/s1"], "site": ["wh", "wh"], "item": ["a", "b"],
+                         "base_cycle_days": [base, base], "major_cost": [50.0, 50.0], "line_cost": [5.0, 3.0],
+                         "cycle_multiple": [1, 2], "annual_cost": [400.0, 200.0]})
+    return table, pol, fams, SimpleNamespace(days_per_year=350.0, backorder_basis="per_unit")
+
+
+def test_family_shared_cost_every_review_orders():
+    """Demand of 20 a day: every review orders, so the family's ordering cost is the joint replenishment
+    closed form S/T + sum_i s_i/(k_i T) a year exactly (Goyal, S. K., "Determination of optimum packaging
+    frequency of items jointly replenished", Management Science 21, 1974: the cost S + sum s_i per joint
+    order with item i in every k_i-th)."""
+    from optimiser.simulate import run_simulation
+
+    table, pol, fams, settings = _family_case(20.0, 20.0)
+    # measured 3430 days = 686 base cycles of 5 days = 9.8 years of 350 days
+    res = run_simulation(table, pol, settings, years=10.0, warmup_years=0.2, replications=3, seed=4,
+                         families=fams)
+    fam = res.families.iloc[0]
+    closed = 50.0 * 350 / 5 + 5.0 * 350 / 5 + 3.0 * 350 / 10
+    assert fam["orders_per_year"] == pytest.approx(70.0, rel=1e-12)
+    assert fam["ordering_cost"] == pytest.approx(closed, rel=1e-12)
+    assert fam["ordering_cost_ci"] == pytest.approx(0.0, abs=1e-9)
+    assert fam["planned_ordering_cost"] == pytest.approx(closed, rel=1e-12)
+    assert fam["planned_orders_per_year"] == pytest.approx(70.0)
+    out = res.table.set_index("item")
+    # the shared cost is split in proportion to orders: a orders twice as often as b
+    assert out.loc["a", "shared_cost"] == pytest.approx(2 * out.loc["b", "shared_cost"], rel=1e-12)
+    assert out.loc["a", "ordering_cost"] == pytest.approx(5.0 * 70 + 3500.0 * 2 / 3, rel=1e-12)
+    assert out.loc["b", "planned_total_cost"] == 200.0 and out.loc["c", "family"] == ""
+    # an item outside the family keeps its full order cost per order
+    assert out.loc["c", "ordering_cost"] == pytest.approx(20.0 * out.loc["c", "orders_per_year"])
+
+
+def test_family_shared_cost_moderate_poisson_demand():
+    """Poisson demand at 0.1 and 0.05 a day, base cycle 5 days, multiples 1 and 2. With order-up-to review
+    an item orders at a review iff it had demand since its last review, so a base cycle has a joint order
+    with probability 1 - exp(-(0.1*5 + 0.05*10)) (both due) or 1 - exp(-0.1*5) (a alone): expected joint
+    orders 70 * (0.6321 + 0.3935) / 2 a year (Poisson zero probability; Feller, An Introduction to Probability
+    Theory and Its Applications I, 1968). The family's cost is S x joint orders + sum s_i x item orders."""
+    from optimiser.simulate import run_simulation
+
+    table, pol, fams, settings = _family_case(0.1, 0.05)
+    res = run_simulation(table, pol, settings, years=40.0, warmup_years=0.2, replications=6, seed=9,
+                         families=fams)
+    fam = res.families.iloc[0]
+    p_both, p_a = 1 - np.exp(-1.0), 1 - np.exp(-0.5)
+    joint = 70.0 * (p_both + p_a) / 2
+    assert _within(fam["orders_per_year"], fam["orders_per_year_ci"], joint)
+    out = res.table.set_index("item")
+    assert _within(out.loc["a", "orders_per_year"], out.loc["a", "orders_per_year_ci"], 70.0 * p_a)
+    assert _within(out.loc["b", "orders_per_year"], out.loc["b", "orders_per_year_ci"], 35.0 * p_a)
+    # fewer joint orders than base cycles, and fewer than the item orders summed (some cycles order both)
+    assert fam["orders_per_year"] < 70.0 * 0.6
+    assert fam["orders_per_year"] < out.loc["a", "orders_per_year"] + out.loc["b", "orders_per_year"] - 5
+    expected = 50.0 * fam["orders_per_year"] + 5.0 * out.loc["a", "orders_per_year"] \
+        + 3.0 * out.loc["b", "orders_per_year"]
+    assert fam["ordering_cost"] == pytest.approx(expected, rel=1e-9)
+    assert out.loc[["a", "b"], "ordering_cost"].sum() == pytest.approx(expected, rel=1e-9)
+    assert fam["ordering_cost"] == pytest.approx(50.0 * joint + 5.0 * 70 * p_a + 3.0 * 35 * p_a, rel=0.03)
