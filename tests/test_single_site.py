@@ -629,3 +629,47 @@ def test_time_weighted_optimum_with_tiny_order_quantity():
                                      options={"xatol": 1e-12, "fatol": 1e-14, "maxiter": 4000}).fun
                    for d in (-1.0, 1.0))
         assert pol.total_cost[0] <= best * (1 + 1e-10)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("basis", ["per_unit", "per_unit_year"])
+def test_dense_grid_agreement_many_cases(basis):
+    # the grid check on 3000 cases with wider spreads (sd up to 1.2·mean, costs over two decades)
+    n = 3000
+    rng = np.random.default_rng(71 if basis == "per_unit" else 72)
+    D, A, h = rng.uniform(10, 2e4, n), rng.uniform(1, 500, n), rng.uniform(0.2, 40, n)
+    mu = rng.uniform(1, 2000, n)
+    sd = mu * rng.uniform(0.02, 1.2, n)
+    b = h * rng.uniform(1, 150, n)
+    eoq = np.sqrt(2 * A * D / h)
+    pol = optimise_policy(D, mu, sd, A, h, backorder_cost=b, backorder_basis=basis)
+    ref = ref_hw_cost if basis == "per_unit" else ref_tw_cost
+    r_lo = np.maximum(mu - 5 * sd, 0.0) if basis == "per_unit" else mu - 3 * eoq - 8 * sd
+    best = np.empty(n)
+    for s in range(0, n, 250):
+        sl = slice(s, s + 250)
+        args = [x[sl][:, None, None] for x in (D, mu, sd, A, h, b)]
+        best[sl], _, _ = zoom_grid_min(lambda Q, R, args=args: ref(Q, R, *args), 0.2 * eoq[sl],
+                                       4 * eoq[sl] + 10 * sd[sl], r_lo[sl], mu[sl] + 10 * sd[sl])
+    mine = ref(pol.order_quantity, pol.reorder_point, D, mu, sd, A, h, b)
+    assert np.all(mine <= best * (1 + 1e-9))
+    np.testing.assert_allclose(mine, best, rtol=1e-6)
+    assert pol.converged.all()
+
+
+@pytest.mark.slow
+def test_federgruen_zheng_exhaustive_many_cases():
+    rng = np.random.default_rng(73)
+    n = 250
+    dist = np.where(rng.random(n) < 0.5, POISSON, NEGBIN)
+    mu = rng.uniform(0.05, 40, n)
+    var = np.where(dist == NEGBIN, mu * rng.uniform(1.05, 8, n), mu)
+    D, A, h = rng.uniform(1, 600, n), rng.uniform(0.5, 100, n), rng.uniform(0.2, 8, n)
+    p = h * rng.uniform(0.5, 60, n)
+    pol = optimise_policy(D, mu, np.sqrt(var), A, h, distribution=dist, backorder_cost=p,
+                          backorder_basis="per_unit_year")
+    for i in range(n):
+        best, r, q, second = _exhaustive_counts(D[i], mu[i], var[i], dist[i], A[i], h[i], p[i], qmax=1200)
+        assert pol.total_cost[i] == pytest.approx(best, rel=1e-10), i
+        if second > best * (1 + 1e-9):
+            assert (pol.reorder_point[i], pol.order_quantity[i]) == (r, q), i
