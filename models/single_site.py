@@ -837,37 +837,13 @@ def _service_q_normal(mu, sd, D, A, h, t, mode, basis):
     return x * sd, it, conv, edge
 
 
-# =============================================================================== generic Q searches
-def _int_golden(fun, lo, hi):
-    """Integer ternary search of fun(idx, Q) on [lo, hi] (a start point; exact only for unimodal fun)."""
-    idx = np.arange(lo.shape[0])
-    a, b = lo.copy(), hi.copy()
-    while True:
-        wide = b - a > 3
-        if not wide.any():
-            break
-        w = np.flatnonzero(wide)
-        m1 = np.floor(a[w] + (b[w] - a[w]) / 3.0)
-        m2 = np.ceil(b[w] - (b[w] - a[w]) / 3.0)
-        f1, f2 = fun(idx[w], m1), fun(idx[w], m2)
-        b[w] = np.where(f1 <= f2, m2, b[w])
-        a[w] = np.where(f1 <= f2, a[w], m1)
-    best = a.copy()
-    fbest = fun(idx, a)
-    for off in (1.0, 2.0, 3.0):
-        cand = np.minimum(a + off, b)
-        fc = fun(idx, cand)
-        better = fc < fbest
-        best = np.where(better, cand, best)
-        fbest = np.where(better, fc, fbest)
-    return best, fbest
-
-
+# ========================================================== counts, service target, free Q
 def _count_service_q(fun, D, mu, A, h, t, mode, basis, q1, sd):
     """Exact integer Q for counts under a service target (ordering + holding along the minimal-R path).
 
-    The cost is not unimodal in Q (R jumps by whole units), so a ternary search only supplies a first
-    incumbent c*; then every Q in [⌈AD/c*⌉, Q_ub] is evaluated, where Q_ub is the last Q whose lower bound
+    The cost is not unimodal in Q (R jumps by whole units). The better of the EOQ and the rounded optimum of
+    the normal approximation with the same moments is a first incumbent c*; then every Q in
+    [⌈AD/c*⌉, Q_ub] is evaluated, where Q_ub is the last Q whose lower bound
     LB(Q) <= c* (at most COUNT_SCAN_MAX values around the incumbent; items where that cap or the search
     range binds are flagged ``NOTE_SEARCH_LIMIT``):
 
@@ -880,7 +856,18 @@ def _count_service_q(fun, D, mu, A, h, t, mode, basis, q1, sd):
     """
     n = D.shape[0]
     hi_cap = np.ceil((Q_HIGH_FACTOR * q1 + Q_HIGH_SIGMAS * sd) / (t if mode == "fill_rate" else 1.0)) + 2.0
-    Q, best = _int_golden(fun, np.ones(n), hi_cap)
+    # incumbent: the better of the EOQ and the normal-approximation optimum (same moments), rounded
+    allidx = np.arange(n)
+    qn = q1.copy()
+    pos = np.flatnonzero(sd > 0)
+    if pos.size:
+        qn[pos] = _service_q_normal(mu[pos], sd[pos], D[pos], A[pos], h[pos], t[pos], mode, basis)[0]
+    qn = np.clip(np.round(qn), 1.0, hi_cap)
+    Q = np.minimum(q1, hi_cap)
+    best = fun(allidx, Q)
+    fn = fun(allidx, qn)
+    Q = np.where(fn < best, qn, Q)
+    best = np.minimum(fn, best)
     AD = A * D
     if mode == "cycle_service":
         Rt = fun.csl_R
@@ -894,7 +881,6 @@ def _count_service_q(fun, D, mu, A, h, t, mode, basis, q1, sd):
         def lb(i, q):
             return AD[i] / q + h[i] * np.maximum(t[i] * q - mu[i], 0.0) ** 2 / (2.0 * q)
     # Q_ub: double from the incumbent while LB <= c*, then bisect (LB is convex in Q)
-    allidx = np.arange(n)
     lo = Q.copy()
     up = np.minimum(np.maximum(2.0 * Q, Q + 1.0), hi_cap)
     grow = np.flatnonzero((lb(allidx, up) <= best) & (up < hi_cap))
@@ -922,9 +908,20 @@ def _count_service_q(fun, D, mu, A, h, t, mode, basis, q1, sd):
     steps = np.zeros(n, dtype=np.int64)
     j = 0.0
     active = np.flatnonzero(q_lb <= q_ub)
+    # R(Q) is non-increasing in Q (the fill rate rises with Q at fixed R): solve it once at the start of the
+    # scan, then step it down one unit at a time while the target still holds
+    r_cur = np.zeros(n)
+    r_cur[active] = fun.best_R(active, q_lb[active])
     while active.size:
         qc = q_lb[active] + j
-        fc = fun(active, qc)
+        if mode == "fill_rate":
+            down = np.arange(active.size)
+            while down.size:
+                ok = fun.meets(active[down], r_cur[active[down]] - 1.0, qc[down])
+                down = down[ok]
+                r_cur[active[down]] -= 1.0
+                steps[active[down]] += 1
+        fc = fun.cost_at(active, r_cur[active], qc)
         better = fc < best[active]
         Q[active] = np.where(better, qc, Q[active])
         best[active] = np.where(better, fc, best[active])
@@ -1375,15 +1372,22 @@ def _joint(is_disc, D, mu, sd, A, h, b, dist, t, mode, basis, rule):
         r_csl, st0, _ = _best_R_counts(np.ones(n), c, D, h, b, "cycle_service", basis, t)
         it = it + st0
 
-        def fun(idx, q):
+        def best_R(idx, q):
             if mode == "cycle_service":
-                Rq = r_csl[idx]
-            else:
-                Rq, _, _ = _best_R_counts(q, c.take(idx), D[idx], h[idx], b[idx], mode, basis, t[idx],
-                                          csl_R=r_csl[idx])
+                return r_csl[idx]
+            return _best_R_counts(q, c.take(idx), D[idx], h[idx], b[idx], mode, basis, t[idx],
+                                  csl_R=r_csl[idx])[0]
+
+        def cost_at(idx, Rq, q):
             return _objective(Rq, q, mu[idx], sd[idx], D[idx], A[idx], h[idx], b[idx], True, mode, basis,
                               c.take(idx))
+
+        def fun(idx, q):
+            return cost_at(idx, best_R(idx, q), q)
         fun.csl_R = r_csl
+        fun.best_R = best_R
+        fun.cost_at = cost_at
+        fun.meets = lambda idx, Rq, q: c.take(idx).short(Rq, q) <= 1.0 - t[idx]
         Q, edge, st = _count_service_q(fun, D, mu, A, h, t, mode, basis, q1, sd)
         it = it + st
     R, st, _ = _best_R_counts(Q, c, D, h, b, mode, basis, t)
