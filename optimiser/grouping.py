@@ -20,6 +20,7 @@ import shutil
 import tempfile
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from dataclasses import replace as dc_replace
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -35,12 +36,13 @@ from optimiser.itemsites import build_itemsites, through_demand
 
 GROUP_COLUMNS = [
     "family", "site", "supplier", "item", "base_cycle_days", "cycle_multiple", "order_interval_days",
-    "order_up_to", "safety_factor", "annual_cost", "independent_cost", "status",
+    "order_up_to", "safety_factor", "annual_cost", "independent_cost", "status", "demand_basis",
+    "window_demand_sd",
 ]
 FAMILY_COLUMNS = [
     "family", "kind", "site", "supplier", "items", "status", "shared_run", "base_cycle_days",
     "independent_cost", "grouped_cost", "savings", "savings_pct", "binding", "gap", "candidates",
-    "candidates_kept", "seconds", "tolerance_proven", "message",
+    "candidates_kept", "seconds", "tolerance_proven", "message", "demand_basis",
 ]
 
 
@@ -75,6 +77,152 @@ class GroupResult:
         return {"families": int(len(self.families)), "solved": int(len(ok)), "independent_cost": ind,
                 "grouped_cost": grp, "savings": ind - grp,
                 "savings_pct": (ind - grp) / ind * 100.0 if ind > 0 else 0.0}
+
+
+BATCH_PASSES = 2  # most solves of a family whose demand comes in batches from the sites below
+BATCH_RESOLVE_TOL = 0.05  # re-solve while the batching variance moves by more than this share of the total
+
+
+def store_order_quantities(case: Case, itemsites: pd.DataFrame, warnings: list[str] | None = None
+                           ) -> pd.DataFrame:
+    """Order quantities of every item-site when each site is planned alone (``rqnet group`` without a plan).
+
+    Parameters
+    ----------
+    case : Case
+    itemsites : DataFrame
+        The item-site table of the case.
+    warnings : list of str, optional
+        Receives the single-site planner's warnings.
+
+    Returns
+    -------
+    DataFrame
+        ``site, item, order_quantity`` from :func:`optimiser.plan._plan_single_site` (each site alone, a
+        warehouse facing the summed demand of the sites below it).
+
+    Examples
+    --------
+    >>> store_order_quantities(case, build_itemsites(case))  # doctest: +SKIP
+
+    Notes
+    -----
+    The network plan moves reorder points, not order quantities (they stay as seeded by the single-site
+    plan), so these are the stores' batches the network plan would use as well.
+
+    References
+    ----------
+    None (the single-site planner of this project).
+    """
+    from optimiser.plan import _plan_single_site
+
+    pol = _plan_single_site(itemsites, case.settings, [] if warnings is None else warnings)
+    return pol[["site", "item", "order_quantity"]].copy()
+
+
+def batched_demand_variance(
+    table: pd.DataFrame, order_quantity: np.ndarray, window_days: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Variance of the demand a site meets over a window when the sites below it order in batches.
+
+    Parameters
+    ----------
+    table : DataFrame
+        Item-site table (``site, item, upstream, daily_mean, daily_sd, lead_days_sd, distribution``).
+    order_quantity : ndarray, (rows,)
+        Order quantity of every row (the batch each site orders from its upstream; NaN where none).
+    window_days : ndarray, (rows,)
+        Window of every row in days (protection period: review interval + lead time).
+
+    Returns
+    -------
+    variance : ndarray, (rows,)
+        Variance of the units demanded from the row's site over the window, lead-time spread included
+        (``Var`` of :func:`models.echelon.warehouse_demand` at lead time = window); for a row with no site
+        below it, ``window * own variance + (daily mean * lead sd)**2``.
+    batched : ndarray of bool, (rows,)
+        Rows whose demand comes (at least partly) from sites below.
+
+    Examples
+    --------
+    >>> t = pd.DataFrame({"site": ["wh", "s1"], "item": ["a", "a"], "upstream": ["", "wh"],
+    ...                   "daily_mean": [0.0, 2.0], "daily_sd": [0.0, 1.5], "lead_days_sd": [0.0, 0.0],
+    ...                   "distribution": [0, 0]})
+    >>> v, b = batched_demand_variance(t, np.array([np.nan, 40.0]), np.array([30.0, 5.0]))
+    >>> bool(b[0]), bool(v[0] > 30 * 2.25)
+    (True, True)
+
+    Notes
+    -----
+    The units a child site orders over a window of length w are ``Q floor((D(w) + U) / Q)``, ``D(w)`` its
+    own (through) demand over the window, ``U`` its position in its batch; their variance is
+    ``Var D(w) + E[r (Q - r)]``, r = (D(w) + U) mod Q (:func:`models.echelon.order_stream_variance`, used
+    through :func:`models.echelon.warehouse_demand`, the same moments the network planner uses). The
+    children's streams and the site's own customers add; a random lead time adds
+    ``(total daily mean * lead sd)**2``. A child that is itself a warehouse counts with its through demand
+    (a moment approximation for trees deeper than two levels).
+
+    References
+    ----------
+    Axsäter, S., Inventory Control, 3rd ed., Springer, 2015, ch. 5 (demand at a warehouse from batch-ordering
+    retailers).
+    """
+    from models.echelon import warehouse_demand
+
+    mean_all, var_all = through_demand(table)
+    n = len(table)
+    window = np.asarray(window_days, dtype=float)
+    q = np.asarray(order_quantity, dtype=float)
+    own_mean = table["daily_mean"].fillna(0.0).to_numpy(float)
+    own_sd = table["daily_sd"].fillna(0.0).to_numpy(float)
+    lead_sd = table["lead_days_sd"].fillna(0.0).to_numpy(float)
+    count = table["distribution"].to_numpy() != NORMAL
+    key = pd.DataFrame({"site": table["site"].to_numpy(), "item": table["item"].to_numpy(),
+                        "row": np.arange(n)})
+    kids = pd.DataFrame({"site": table["upstream"].to_numpy(), "item": table["item"].to_numpy(),
+                         "child": np.arange(n)})
+    kids = kids[kids["site"] != ""].merge(key, on=["site", "item"], how="inner")
+    batched = np.zeros(n, dtype=bool)
+    var = window * own_sd**2 + (mean_all * lead_sd) ** 2
+    if kids.empty:
+        return var, batched
+    kids["slot"] = kids.groupby("row").cumcount()
+    rows = np.unique(kids["row"].to_numpy())
+    pos = {r: i for i, r in enumerate(rows)}
+    w_idx = np.array([pos[r] for r in kids["row"]], dtype=np.int64)
+    m = int(kids["slot"].max()) + 1
+    c = kids["child"].to_numpy()
+    c_mean = mean_all[c]
+    c_q = q[c]
+    use = (c_mean > 0) & np.isfinite(c_q) & (c_q > 0)
+    sm = np.zeros((rows.size, m))
+    ssd = np.zeros((rows.size, m))
+    sq = np.ones((rows.size, m))
+    sc = np.ones((rows.size, m), dtype=bool)
+    sl = kids["slot"].to_numpy()
+    sm[w_idx[use], sl[use]] = c_mean[use]
+    ssd[w_idx[use], sl[use]] = np.sqrt(var_all[c][use])
+    sq[w_idx[use], sl[use]] = c_q[use]
+    sc[w_idx[use], sl[use]] = count[c][use]
+    wd = warehouse_demand(sm, ssd, sq, sc, window[rows], lead_sd[rows], own_mean[rows], own_sd[rows],
+                          count[rows], max_support=0)
+    var[rows] = wd.var
+    batched[rows] = sm.sum(axis=1) > 0
+    return var, batched
+
+
+def _batched_rows(table: pd.DataFrame, pos: np.ndarray, window: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Batched-demand variance over ``window`` for the rows at positions ``pos`` of ``table``."""
+    full = np.full(len(table), 1.0)
+    full[pos] = window
+    var, batched = batched_demand_variance(table, table["_q"].to_numpy(float), full)
+    return var[pos], batched[pos]
+
+
+def _batch_excess(table, pos, window, var_rate, d_day, sl) -> np.ndarray:
+    """C = Var_b(W) - W V - (d sd_L)**2 (>= 0) at the windows ``window`` of the rows at ``pos``."""
+    v, batched = _batched_rows(table, pos, window)
+    return np.where(batched, np.maximum(v - window * var_rate - (d_day * sl) ** 2, 0.0), 0.0)
 
 
 def _finite_or_inf(value: float) -> float:
@@ -266,6 +414,8 @@ def group_case(
     time_limit: float = gm.TIME_LIMIT,
     use_runs: bool = True,
     progress: Callable[[str], None] | None = None,
+    store_policies: pd.DataFrame | None = None,
+    batch_basis: bool = True,
 ) -> GroupResult:
     """Group every family of a case under its shared order cost.
 
@@ -285,6 +435,14 @@ def group_case(
         Consider the shared runs of the case's ``runs.csv`` (when present); see :func:`read_runs`.
     progress : callable, optional
         Called with a line of text per family.
+    store_policies : DataFrame, optional
+        ``site, item, order_quantity`` of the plan (``rqnet plan``): the batches in which the sites below an
+        upstream site order from it. Without it (and with ``batch_basis``) the single-site plan's order
+        quantities are used (:func:`store_order_quantities`).
+    batch_basis : bool
+        At a site that supplies other sites, take the variance of its demand from the order streams of the
+        sites below (batches of their Q, :func:`batched_demand_variance`); False: the sum of their customer
+        demand variances.
 
     Returns
     -------
@@ -298,6 +456,16 @@ def group_case(
     demand; grouped cost: shared cost per cycle plus, per item, line cost per order, cycle stock and the
     safety stock and backorders of a periodic order-up-to policy over interval plus lead time.
 
+    Demand basis at a site that supplies others: the units ordered by the sites below over a window w have
+    variance ``Var_b(w) = sum_i [Var D_i(w) + E r_i (Q_i - r_i)]`` plus own customers plus
+    ``(d sd_L)**2`` (:func:`batched_demand_variance`); the grouping model's variance over the protection
+    period is ``(tau + L) V + D**2 sd_L**2``, so the batching excess ``C = Var_b(W) - W V - (d sd_L)**2``
+    (V the customer variance rate) is carried by the lead-time-spread term (``sd_L**2 + C / d**2``),
+    which makes the model's variance exact at window W. W starts at lead time + the site's own order cycle
+    (Q / d) and is set to k_i T + L_i after each solve; the family is solved again (at most
+    :data:`BATCH_PASSES` times) while C moves by more than :data:`BATCH_RESOLVE_TOL` of the variance.
+    The independent (R, Q) comparison uses ``Var_b(L)`` over the lead time.
+
     Examples
     --------
     >>> result = group_case(load_case("cases/demo"))  # doctest: +SKIP
@@ -307,14 +475,22 @@ def group_case(
     settings = case.settings
     table = build_itemsites(case) if itemsites is None else itemsites
     _, var_all = through_demand(table)
-    table = table.assign(_var=var_all)
+    table = table.assign(_var=var_all).reset_index(drop=True)
     dpy = float(settings.days_per_year)
     warnings: list[str] = []
+    batch_q = None
+    if batch_basis and (table["upstream"] != "").any():
+        pol = store_policies if store_policies is not None else store_order_quantities(case, table)
+        batch_q = (table[["site", "item"]].merge(pol[["site", "item", "order_quantity"]]
+                                                 .drop_duplicates(["site", "item"]), on=["site", "item"],
+                                                 how="left")["order_quantity"].to_numpy(float))
+        table = table.assign(_q=batch_q)
     group_rows: list[pd.DataFrame] = []
     fam_rows: list[dict[str, Any]] = []
     fams = _families(case, table, deliveries)
     solved: dict[str, tuple[int, gm.Family, np.ndarray]] = {}  # family -> (position, model data, active)
     for f in fams:
+        pos_all = table.index.get_indexer(f["rows"].index)
         rows = f["rows"].reset_index(drop=True)
         n = len(rows)
         active = rows["annual_demand"].to_numpy(float) > 0
@@ -322,13 +498,14 @@ def group_case(
                             "item": rows["item"].to_numpy(), "base_cycle_days": np.nan,
                             "cycle_multiple": pd.array([pd.NA] * n, dtype="Int64"),
                             "order_interval_days": np.nan, "order_up_to": np.nan, "safety_factor": np.nan,
-                            "annual_cost": 0.0, "independent_cost": 0.0, "status": "no demand"})
+                            "annual_cost": 0.0, "independent_cost": 0.0, "status": "no demand",
+                            "demand_basis": "", "window_demand_sd": np.nan})
         rec: dict[str, Any] = {
             "family": f["family"], "kind": f["kind"], "site": f["site"], "supplier": f["supplier"],
             "items": int(active.sum()), "base_cycle_days": np.nan, "independent_cost": 0.0,
             "grouped_cost": 0.0, "savings": 0.0, "savings_pct": 0.0, "binding": "", "gap": np.nan,
             "candidates": 0, "candidates_kept": 0, "seconds": 0.0, "tolerance_proven": False,
-            "shared_run": "",
+            "shared_run": "", "demand_basis": "",
         }
         act = rows[active]
         if not active.any():
@@ -345,7 +522,20 @@ def group_case(
                                   (act["weight"].to_numpy(float), f["cap_w"])):
                 if math.isfinite(cap):
                     q_max = np.minimum(q_max, np.where(per_unit > 0, cap / per_unit, np.inf))
-        ind, n_lim, n_imp = _independent_costs(act, act["_var"].to_numpy(float), f["major"] + minor, settings,
+        lead = act["lead_days"].to_numpy(float)
+        d_day = act["annual_demand"].to_numpy(float) / dpy
+        sl = act["lead_days_sd"].to_numpy(float)
+        var_rate = act["_var"].to_numpy(float)
+        batched = np.zeros(len(act), dtype=bool)
+        ind_var = var_rate
+        if batch_q is not None:
+            v_lead, batched = _batched_rows(table, pos_all[active], lead)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                ind_var = np.where(batched & (lead > 0), (v_lead - (d_day * sl) ** 2) / lead, var_rate)
+        basis = np.where(batched, "store orders in batches", "customer demand")
+        out.loc[active, "demand_basis"] = basis
+        rec["demand_basis"] = ("store orders in batches" if batched.any() else "customer demand")
+        ind, n_lim, n_imp = _independent_costs(act, np.maximum(ind_var, 0.0), f["major"] + minor, settings,
                                                q_min, q_max)
         out.loc[active, "independent_cost"] = ind
         rec["independent_cost"] = float(ind.sum())
@@ -366,24 +556,66 @@ def group_case(
         shelf = f["shelf"][active] / dpy if f["shelf"] is not None else np.full(len(act), np.inf)
         shelf = np.where(np.isfinite(shelf), shelf, np.inf)
         target = act["target"].to_numpy(float) if settings.mode != "cost" else None
-        fam = gm.make_family(
-            f["major"], minor, act["holding_cost"].to_numpy(float), act["annual_demand"].to_numpy(float),
-            demand_var=act["_var"].to_numpy(float) * dpy, lead_time=act["lead_days"].to_numpy(float) / dpy,
-            lead_time_sd=act["lead_days_sd"].to_numpy(float) / dpy,
-            backorder_cost=act["backorder_cost"].to_numpy(float), unit_value=act["unit_cost"].to_numpy(float),
-            volume=np.nan_to_num(vol, nan=0.0), weight=np.nan_to_num(wgt, nan=0.0), max_interval=shelf,
-            capacity_volume=f["cap_v"], capacity_weight=f["cap_w"], min_order_value=f["min_value"],
-            backorder_basis=settings.backorder_basis, mode=settings.mode, target=target,
-        )
+
+        def build(lead_sd_days: np.ndarray, f=f, minor=minor, act=act, vol=vol, wgt=wgt, shelf=shelf,
+                  target=target) -> gm.Family:
+            return gm.make_family(
+                f["major"], minor, act["holding_cost"].to_numpy(float), act["annual_demand"].to_numpy(float),
+                demand_var=act["_var"].to_numpy(float) * dpy,
+                lead_time=act["lead_days"].to_numpy(float) / dpy, lead_time_sd=lead_sd_days / dpy,
+                backorder_cost=act["backorder_cost"].to_numpy(float),
+                unit_value=act["unit_cost"].to_numpy(float),
+                volume=np.nan_to_num(vol, nan=0.0), weight=np.nan_to_num(wgt, nan=0.0), max_interval=shelf,
+                capacity_volume=f["cap_v"], capacity_weight=f["cap_w"], min_order_value=f["min_value"],
+                backorder_basis=settings.backorder_basis, mode=settings.mode, target=target,
+            )
+
         if n_lim:
             warnings.append(f"family {f['family']}: ordered alone, {n_lim} item(s) need an order quantity at "
                             "the supplier's minimum value or the vehicle's capacity (independent cost with Q "
                             "fixed there)" + (f"; {n_imp} cannot meet both alone (Q at capacity, below the "
                                               "minimum)" if n_imp else ""))
         say(f"grouping {f['family']}: {len(act)} item(s)")
-        sol = gm.solve_family(fam, k_max=k_max, powers_of_two=powers_of_two, grid_ratio=grid_ratio,
-                              time_limit=time_limit)
+        if batched.any():
+            # the batching excess C enters through the lead-time-spread term; iterate on the window
+            own_q = act["_q"].to_numpy(float)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                cycle = np.where(np.isfinite(own_q) & (d_day > 0), own_q / np.where(d_day > 0, d_day, 1.0),
+                                 0.0)
+            window = lead + cycle
+            excess = _batch_excess(table, pos_all[active], window, var_rate, d_day, sl)
+            passes = 0
+            while True:
+                passes += 1
+                with np.errstate(divide="ignore", invalid="ignore"):
+                    spread = np.where(d_day > 0, excess / np.where(d_day > 0, d_day, 1.0) ** 2, 0.0)
+                sl_eff = np.sqrt(sl**2 + spread)
+                fam = build(sl_eff)
+                sol = gm.solve_family(fam, k_max=k_max, powers_of_two=powers_of_two, grid_ratio=grid_ratio,
+                                      time_limit=time_limit)
+                window = sol.cycle * dpy * np.asarray(sol.multiples, dtype=float) + lead
+                new = _batch_excess(table, pos_all[active], window, var_rate, d_day, sl)
+                total = window * var_rate + (d_day * sl) ** 2 + new
+                moved = np.max(np.abs(new - excess) / np.maximum(total, 1e-12))
+                excess = new
+                if moved <= BATCH_RESOLVE_TOL or passes >= BATCH_PASSES:
+                    break
+            # levels and costs of the chosen (T, k) at the variance of the windows they give
+            spread = np.where(d_day > 0, excess / np.where(d_day > 0, d_day, 1.0) ** 2, 0.0)
+            fam = build(np.sqrt(sl**2 + spread))
+            item_cost, z_fin, up_fin = gm.policy_costs(fam, sol.cycle, np.asarray(sol.multiples))
+            sol = dc_replace(sol, item_cost=item_cost, safety_factor=z_fin, order_up_to=up_fin,
+                             total_cost=sol.major_cost_rate + float(np.sum(item_cost)))
+            rec["demand_basis"] = (f"store orders in batches ({passes} solve(s); the last moved the batching "
+                                   f"variance by {100 * moved:.1f}%; levels at the chosen windows)")
+        else:
+            fam = build(sl)
+            sol = gm.solve_family(fam, k_max=k_max, powers_of_two=powers_of_two, grid_ratio=grid_ratio,
+                                  time_limit=time_limit)
         T_days = sol.cycle * dpy
+        win = T_days * np.asarray(sol.multiples, dtype=float) + lead
+        out.loc[active, "window_demand_sd"] = np.sqrt(np.maximum(
+            win * var_rate + (d_day * sl) ** 2 + (excess if batched.any() else 0.0), 0.0))
         out.loc[active, "base_cycle_days"] = T_days
         out.loc[active, "cycle_multiple"] = sol.multiples
         out.loc[active, "order_interval_days"] = T_days * sol.multiples
