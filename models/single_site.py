@@ -932,7 +932,7 @@ def _count_service_q(fun, D, mu, A, h, t, mode, basis, q1, sd):
 
 
 # ================================================================================== validation
-def _arr(name, value, n=None):
+def _arr(name, value):
     a = np.atleast_1d(np.asarray(value, dtype=float))
     if a.ndim != 1:
         raise ValueError(f"{name} must be a scalar or a 1-D array, got shape {a.shape}")
