@@ -96,6 +96,11 @@ def _out_argument(parser: argparse.ArgumentParser) -> None:
 def _plan_arguments(parser: argparse.ArgumentParser) -> None:
     _case_argument(parser)
     _out_argument(parser)
+    parser.add_argument(
+        "--no-grouping",
+        action="store_true",
+        help="skip the section on ordering a supplier's items together (groups.csv, families.csv)",
+    )
 
 
 def _run_plan(args: argparse.Namespace) -> int:
@@ -107,7 +112,7 @@ def _run_plan(args: argparse.Namespace) -> int:
     from optimiser.plan import plan_case
     from optimiser.report import write_outputs
 
-    result = plan_case(case, progress=say)
+    result = plan_case(case, progress=say, grouping=not getattr(args, "no_grouping", False))
     say(f"writing results to {args.out}")
     write_outputs(
         result, args.out, case_name=case.settings.name, case_path=str(args.case), plots=not args.no_plots
@@ -131,6 +136,14 @@ def _print_totals(result, out: Path) -> None:  # noqa: ANN001 - PlanResult, impo
             f"today's policies on the same item-sites: {row['current_total_cost']:,.0f}{cur} a year; "
             f"recommended {row['recommended_total_cost']:,.0f}{cur}"
         )
+    section = getattr(result, "grouping", None)
+    if section is not None and section.result is not None:
+        tot = section.totals()
+        print(
+            f"ordering together: {tot['families']} supplier famil{'y' if tot['families'] == 1 else 'ies'}, "
+            f"grouped {tot['grouped_cost']:,.0f}{cur} a year against {tot['independent_cost']:,.0f}{cur} "
+            f"ordering each item alone (saving {tot['savings']:,.0f}{cur})"
+        )
     for warning in result.warnings:
         print(f"warning: {warning}")
     print(f"results in {out}")
@@ -145,7 +158,9 @@ PLAN = Command(
     "and shortage costs, or meet the service target set in case.toml. Results go to the --out folder: "
     "policies.csv for the whole network, a folder per site with its policies and a readable summary, "
     "summary.json with the totals, and charts. If the case has policies.csv (today's policies), their cost "
-    "and service are shown beside the recommended ones.",
+    "and service are shown beside the recommended ones. Unless --no-grouping, each site's items from one "
+    "supplier are also grouped on a common order cycle to share the supplier's order cost (groups.csv, "
+    "families.csv, and an 'Ordering together' section in the site's summary).",
     _plan_arguments,
     _run_plan,
 )

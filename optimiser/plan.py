@@ -79,6 +79,8 @@ class PlanResult:
     network_summary : DataFrame or None
         From the network method, per item and root site: how safety stock splits between the warehouse and
         the stores, and the network cost against planning each site alone (``optimiser.network``).
+    grouping : GroupingSection or None
+        The plan's "ordering together" section (:func:`plan_grouping`); None for an evaluation.
     """
 
     command: str
@@ -92,6 +94,90 @@ class PlanResult:
     comparison: pd.DataFrame | None = None
     method: str = "single-site"
     network_summary: pd.DataFrame | None = None
+    grouping: GroupingSection | None = None
+
+
+@dataclass(frozen=True)
+class GroupingSection:
+    """Joint replenishment run after a plan.
+
+    Attributes
+    ----------
+    state : str
+        ``"done"``, ``"skipped"`` (``--no-grouping``) or ``"failed"`` (the plan stands; ``message`` says
+        what failed).
+    message : str
+        What happened, in words.
+    result : GroupResult or None
+        From :func:`optimiser.grouping.group_case` when ``state == "done"``.
+    """
+
+    state: str
+    message: str = ""
+    result: Any = None
+
+    def totals(self) -> dict[str, Any]:
+        """Sums over every family listed (``families, independent_cost, grouped_cost, savings``)."""
+        if self.result is None:
+            return {}
+        fam = self.result.families
+        ind = float(np.nansum(fam["independent_cost"].to_numpy(float)))
+        grp = float(np.nansum(fam["grouped_cost"].to_numpy(float)))
+        return {"families": int(len(fam)),
+                "solved": int(fam["status"].isin(["optimal", "time_limit"]).sum()),
+                "independent_cost": ind, "grouped_cost": grp, "savings": ind - grp,
+                "savings_pct": 100.0 * (ind - grp) / ind if ind > 0 else 0.0}
+
+
+def plan_grouping(case: Case, itemsites: pd.DataFrame, policies: pd.DataFrame, *,
+                  progress: Callable[[str], None] | None = None, **options: Any) -> GroupingSection:
+    """Group the items each site orders from its suppliers, on the demand basis of a plan.
+
+    Parameters
+    ----------
+    case : Case
+    itemsites : DataFrame
+        The item-site table of the plan.
+    policies : DataFrame
+        The plan's policies; their ``order_quantity`` is the batch in which every site below an upstream
+        site orders from it (the upstream's demand basis, see :func:`optimiser.grouping.group_case`).
+    progress : callable, optional
+    **options
+        Passed to :func:`optimiser.grouping.group_case` (``k_max``, ``time_limit``, ...).
+
+    Returns
+    -------
+    GroupingSection
+        ``state="done"`` with the result, or ``"failed"`` with the reason: a failure of the grouping
+        (solver, model) never loses the plan.
+
+    Examples
+    --------
+    >>> section = plan_grouping(case, result.itemsites, result.policies)  # doctest: +SKIP
+
+    Notes
+    -----
+    The grouping model falls back to RAND by itself when the MILP solver fails for a family and says so
+    in the family's status and message; only a failure outside it makes the section ``failed``.
+
+    References
+    ----------
+    See :func:`optimiser.grouping.group_case`.
+    """
+    from optimiser.grouping import group_case
+
+    try:
+        res = group_case(case, itemsites, store_policies=policies[["site", "item", "order_quantity"]],
+                         progress=progress, **options)
+    except (SolverError, ArithmeticError, ValueError, RuntimeError, ImportError, OSError, KeyError) as exc:
+        # the plan stands without its grouping section; the reason goes into the outputs
+        return GroupingSection("failed", f"grouping failed ({type(exc).__name__}): {exc}")
+    fam = res.families
+    fallback = fam[~fam["status"].isin(["optimal", "time_limit", "not grouped", "no demand"])]
+    message = f"{len(fam)} famil{'y' if len(fam) == 1 else 'ies'} grouped"
+    if len(fallback):
+        message += "; " + "; ".join(f"{r.family}: {r.status} ({r.message})" for r in fallback.itertuples())
+    return GroupingSection("done", message, res)
 
 
 # --------------------------------------------------------------------------------------------- helpers
@@ -417,7 +503,8 @@ def _comparison(recommended: pd.DataFrame, current: pd.DataFrame, itemsites: pd.
 # --------------------------------------------------------------------------------------------- public
 
 
-def plan_case(case: Case, *, progress: Callable[[str], None] | None = None) -> PlanResult:
+def plan_case(case: Case, *, progress: Callable[[str], None] | None = None, grouping: bool = True,
+              grouping_options: dict[str, Any] | None = None) -> PlanResult:
     """Recommend a reorder point and order quantity for every stocked item at every site.
 
     Parameters
@@ -426,6 +513,11 @@ def plan_case(case: Case, *, progress: Callable[[str], None] | None = None) -> P
         From :func:`optimiser.case.load_case`.
     progress : callable, optional
         Called with a short line of text before each long step.
+    grouping : bool
+        After the (R, Q) plan, group the items each site orders from a supplier under the shared order cost
+        (:func:`plan_grouping`); False records the section as skipped.
+    grouping_options : dict, optional
+        Passed to :func:`optimiser.grouping.group_case`.
 
     Returns
     -------
@@ -471,6 +563,13 @@ def plan_case(case: Case, *, progress: Callable[[str], None] | None = None) -> P
         today.attrs["rows"] = case.rows.get("policies.csv")
         current, _ = _evaluate(itemsites, today, case.settings, "policies.csv", warnings)
         comparison = _comparison(policies, current, itemsites)
+    if grouping:
+        say("grouping the items ordered together from each supplier")
+        section = plan_grouping(case, itemsites, policies, progress=say, **(grouping_options or {}))
+        if section.state == "failed":
+            warnings.append(f"ordering together: {section.message}; the plan above is complete without it")
+    else:
+        section = GroupingSection("skipped", "grouping skipped (--no-grouping)")
     warnings = list(dict.fromkeys(warnings))
     return PlanResult(
         command="plan",
@@ -484,6 +583,7 @@ def plan_case(case: Case, *, progress: Callable[[str], None] | None = None) -> P
         comparison=comparison,
         method=method,
         network_summary=network_summary,
+        grouping=section,
     )
 
 

@@ -8,6 +8,8 @@ Layout of the output folder::
     summary.json              totals per site and for the network, settings, tool version, warnings
     comparison.csv            today's against the recommended policies (only when the case gives today's)
     network_summary.csv       network method: per item, safety stock split and saving against planning alone
+    groups.csv, families.csv  plan: items ordered together per supplier family (rqnet plan without
+                              --no-grouping; summary.json "grouping" holds the per-family totals)
     cost_by_site.png          annual cost per site by component
     safety_stock_vs_service.png  safety stock in days of demand against fill rate per item-site
 
@@ -148,12 +150,71 @@ def _summary_json(result: PlanResult, case_name: str, case_path: str) -> dict[st
     }
     if result.network_summary is not None and len(result.network_summary):
         out["network_plan"] = _network_plan_totals(result)
+    section = getattr(result, "grouping", None)
+    if section is not None:
+        out["grouping"] = _grouping_json(section)
     if result.comparison is not None:
         out["today"] = {
             row["site"]: {k: v for k, v in row.items() if k != "site"}
             for row in result.comparison.to_dict(orient="records")
         }
     return _clean(out)
+
+
+def _grouping_json(section: Any) -> dict[str, Any]:
+    """The plan's "ordering together" section: state, totals over the families, per family figures."""
+    out: dict[str, Any] = {"state": section.state, "message": section.message}
+    if section.result is None:
+        return out
+    out["totals"] = section.totals()
+    fams = {}
+    for rec in section.result.families.to_dict(orient="records"):
+        fams[str(rec["family"])] = {
+            "site": rec["site"], "supplier": rec["supplier"], "items": rec["items"], "status": rec["status"],
+            "base_cycle_days": rec["base_cycle_days"], "independent_cost": rec["independent_cost"],
+            "grouped_cost": rec["grouped_cost"], "savings": rec["savings"], "savings_pct": rec["savings_pct"],
+            "binding": [b for b in str(rec["binding"]).split(",") if b], "gap": rec["gap"],
+            "shared_run": rec["shared_run"], "demand_basis": rec.get("demand_basis", ""),
+            "message": rec["message"],
+        }
+    out["families"] = fams
+    out["warnings"] = list(section.result.warnings)
+    return out
+
+
+def _grouping_lines(result: PlanResult, site: str) -> list[str]:
+    """The "Ordering together" section of a site's summary.md (sites that order from suppliers)."""
+    section = getattr(result, "grouping", None)
+    if section is None or result.command != "plan":
+        return []
+    if (result.itemsites.loc[result.itemsites["site"] == site, "upstream"] != "").all():
+        return []  # the site orders from another site only
+    lines = ["## Ordering together", ""]
+    if section.result is None:
+        return lines + [f"Not done: {section.message}.", ""]
+    fam = section.result.families
+    fam = fam[fam["site"].astype(str) == site]
+    if fam.empty:
+        return lines + ["No supplier family at this site.", ""]
+    cur = result.settings.currency
+    lines += [
+        "Ordering a supplier's items on a common base cycle, each item every k cycles, shares the supplier's "
+        "order cost. Per family (items in groups.csv):",
+        "",
+        "| family | base cycle (days) | grouped cost | ordering alone | savings | binds |",
+        "|---|---|---|---|---|---|",
+    ]
+    for rec in fam.itertuples(index=False):
+        cycle = f"{rec.base_cycle_days:,.1f}" if math.isfinite(rec.base_cycle_days) else "n/a"
+        bind = ", ".join(b.replace("_", " ") for b in str(rec.binding).split(",") if b) or "none"
+        if rec.status not in ("optimal", "time_limit", "not grouped", "no demand"):
+            bind += f" ({rec.status})"
+        lines.append(
+            f"| {rec.family} | {cycle} | {_money(rec.grouped_cost, cur)} "
+            f"| {_money(rec.independent_cost, cur)} | {_money(rec.savings, cur)} ({rec.savings_pct:.1f} %) "
+            f"| {bind} |"
+        )
+    return lines + [""]
 
 
 def _network_plan_totals(result: PlanResult) -> dict[str, dict[str, Any]]:
@@ -259,6 +320,7 @@ def _site_summary(result: PlanResult, site: str, totals: dict[str, Any], frame: 
             "points sit below the expected lead-time demand). Per item in network_summary.csv.",
             "",
         ]
+    lines += _grouping_lines(result, site)
     top = frame.sort_values("total_cost", ascending=False).head(TOP_ITEMS)
     total = totals["total_cost"]
     lines += [
@@ -415,6 +477,11 @@ def write_outputs(
         if result.comparison is not None:
             _text_frame(result.comparison).to_csv(temp / "comparison.csv", index=False)
             written.append("comparison.csv")
+        section = getattr(result, "grouping", None)
+        if section is not None and section.result is not None:
+            section.result.groups.to_csv(temp / "groups.csv", index=False, float_format="%.6g")
+            section.result.families.to_csv(temp / "families.csv", index=False, float_format="%.6g")
+            written += ["groups.csv", "families.csv"]
         summary = _summary_json(result, case_name or result.settings.name, case_path)
         (temp / "summary.json").write_text(
             json.dumps(summary, indent=2, ensure_ascii=False) + "\n", encoding="utf-8"

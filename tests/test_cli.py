@@ -243,3 +243,62 @@ def test_demo_network_plan_summary(demo_out: Path) -> None:
     # the network cost is the cost of the written policies of every site (the stores' and the depot's)
     assert depot["network_cost"] == pytest.approx(summary["network"]["total_cost"], rel=1e-4)
     assert "Planning the network together" in (demo_out / "sites" / "depot" / "summary.md").read_text()
+
+
+# ----------------------------------------------------------------------------------------------------------
+# the plan's "ordering together" section (joint replenishment per supplier family)
+# ----------------------------------------------------------------------------------------------------------
+def test_demo_plan_writes_the_grouping_section(demo_out: Path) -> None:
+    groups = pd.read_csv(demo_out / "groups.csv", keep_default_na=False)
+    for column in ("family", "item", "base_cycle_days", "cycle_multiple", "order_interval_days",
+                   "order_up_to", "annual_cost"):
+        assert column in groups.columns
+    families = pd.read_csv(demo_out / "families.csv", keep_default_na=False)
+    case = load_case(DEMO)
+    # one family per supplier the depot (the only site fed by suppliers) buys from
+    assert set(families["family"]) == {f"depot/{s}" for s in case.items["supplier"].unique()}
+    summary = json.loads((demo_out / "summary.json").read_text(encoding="utf-8"))
+    grouping = summary["grouping"]
+    assert grouping["state"] == "done"
+    fams = grouping["families"]
+    assert set(fams) == set(families["family"])
+    for name in ("independent_cost", "grouped_cost", "savings"):
+        assert grouping["totals"][name] == pytest.approx(sum(f[name] for f in fams.values()), rel=1e-9)
+    for rec in fams.values():
+        assert rec["savings"] == pytest.approx(rec["independent_cost"] - rec["grouped_cost"], rel=1e-9)
+    # the grouped cost of a family is the sum of its items' annual costs in groups.csv
+    per_family = groups.groupby("family")["annual_cost"].apply(lambda v: pd.to_numeric(v).sum())
+    for name, rec in fams.items():
+        assert rec["grouped_cost"] == pytest.approx(per_family[name], rel=1e-4)
+    # the depot's summary names every family; a store (ordering from the depot) has no such section
+    text = (demo_out / "sites" / "depot" / "summary.md").read_text(encoding="utf-8")
+    assert "## Ordering together" in text
+    for name in fams:
+        assert f"| {name} |" in text
+    store = case.sites.loc[case.sites["upstream"] != "", "site"].iloc[0]
+    assert "Ordering together" not in (demo_out / "sites" / store / "summary.md").read_text(encoding="utf-8")
+
+
+def test_plan_no_grouping_writes_none(tmp_path: Path) -> None:
+    out = tmp_path / "out"
+    assert main(["plan", str(QUICK), "--out", str(out), "-q", "--no-plots", "--no-grouping"]) == 0
+    assert not (out / "groups.csv").exists() and not (out / "families.csv").exists()
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    assert summary["grouping"]["state"] == "skipped" and "families" not in summary["grouping"]
+
+
+def test_plan_survives_a_grouping_failure(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    import optimiser.grouping as grouping
+    from optimiser.errors import SolverError
+
+    def broken(*_args, **_kwargs):
+        raise SolverError("the MILP solver is not available")
+
+    monkeypatch.setattr(grouping, "group_case", broken)
+    out = tmp_path / "out"
+    assert main(["plan", str(QUICK), "--out", str(out), "-q", "--no-plots"]) == 0
+    assert (out / "policies.csv").exists() and not (out / "groups.csv").exists()
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    assert summary["grouping"]["state"] == "failed"
+    assert "the MILP solver is not available" in summary["grouping"]["message"]
+    assert any("ordering together" in w for w in summary["warnings"])
