@@ -37,7 +37,7 @@ from optimiser.itemsites import build_itemsites, through_demand
 GROUP_COLUMNS = [
     "family", "site", "supplier", "item", "base_cycle_days", "cycle_multiple", "order_interval_days",
     "order_up_to", "safety_factor", "annual_cost", "independent_cost", "status", "demand_basis",
-    "window_demand_sd",
+    "window_demand_sd", "fill_rate", "expected_on_hand",
 ]
 FAMILY_COLUMNS = [
     "family", "kind", "site", "supplier", "items", "status", "shared_run", "base_cycle_days",
@@ -209,6 +209,28 @@ def batched_demand_variance(
     var[rows] = wd.var
     batched[rows] = sm.sum(axis=1) > 0
     return var, batched
+
+
+def _set_predictions(out: pd.DataFrame, active: np.ndarray, fam: gm.Family, cycle: float, multiples,
+                     z) -> None:
+    """Write the model's sd over the protection period, fill rate and mean on hand of each grouped item.
+
+    Normal approximation of the periodic order-up-to policy (as the grouping model prices it): sigma over
+    ``tau + L`` with ``tau = k T``, shortage per cycle ``sigma G(z)``, fill rate ``1 - sigma G(z) / (D tau)``,
+    mean on hand ``sigma G(-z) + D tau / 2`` (Silver, Pyke & Peterson 1998, ch. 7).
+    """
+    from models.loss import normal_loss
+
+    tau = cycle * np.asarray(multiples, dtype=float)
+    sigma = np.sqrt(np.maximum((tau + fam.lead_time) * fam.demand_var
+                               + fam.annual_demand**2 * fam.lead_time_sd**2, 0.0))
+    z = np.asarray(z, dtype=float)
+    per_cycle = fam.annual_demand * tau
+    with np.errstate(divide="ignore", invalid="ignore"):
+        fill = np.where(per_cycle > 0, 1.0 - sigma * normal_loss(z) / per_cycle, np.nan)
+    out.loc[active, "window_demand_sd"] = sigma
+    out.loc[active, "fill_rate"] = np.clip(fill, 0.0, 1.0)
+    out.loc[active, "expected_on_hand"] = sigma * normal_loss(-z) + per_cycle / 2.0
 
 
 def _batched_rows(table: pd.DataFrame, pos: np.ndarray, window: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -499,7 +521,8 @@ def group_case(
                             "cycle_multiple": pd.array([pd.NA] * n, dtype="Int64"),
                             "order_interval_days": np.nan, "order_up_to": np.nan, "safety_factor": np.nan,
                             "annual_cost": 0.0, "independent_cost": 0.0, "status": "no demand",
-                            "demand_basis": "", "window_demand_sd": np.nan})
+                            "demand_basis": "", "window_demand_sd": np.nan, "fill_rate": np.nan,
+                            "expected_on_hand": np.nan})
         rec: dict[str, Any] = {
             "family": f["family"], "kind": f["kind"], "site": f["site"], "supplier": f["supplier"],
             "items": int(active.sum()), "base_cycle_days": np.nan, "independent_cost": 0.0,
@@ -613,9 +636,7 @@ def group_case(
             sol = gm.solve_family(fam, k_max=k_max, powers_of_two=powers_of_two, grid_ratio=grid_ratio,
                                   time_limit=time_limit)
         T_days = sol.cycle * dpy
-        win = T_days * np.asarray(sol.multiples, dtype=float) + lead
-        out.loc[active, "window_demand_sd"] = np.sqrt(np.maximum(
-            win * var_rate + (d_day * sl) ** 2 + (excess if batched.any() else 0.0), 0.0))
+        _set_predictions(out, active, fam, sol.cycle, sol.multiples, sol.safety_factor)
         out.loc[active, "base_cycle_days"] = T_days
         out.loc[active, "cycle_multiple"] = sol.multiples
         out.loc[active, "order_interval_days"] = T_days * sol.multiples
@@ -703,6 +724,7 @@ def _apply_runs(runs: pd.DataFrame, solved: dict, fam_rows: list, group_rows: li
                 out.loc[active, "order_interval_days"] = T * dpy * k
                 out.loc[active, "order_up_to"] = up
                 out.loc[active, "safety_factor"] = z
+                _set_predictions(out, active, fam, T, k, z)
                 weight = (1.0 / k) / np.sum(1.0 / k)
                 out.loc[active, "annual_cost"] = item_cost + major * weight
                 out.loc[active, "status"] = res.status

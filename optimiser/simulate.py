@@ -875,7 +875,9 @@ def run_simulation(
             out[f"{name}_ci"] = np.where(grouped, confidence_half_width(fam_cols[name], axis=0), np.nan)
         for name, values in (("orders_per_year", fam_cols["planned_orders_per_year"]),
                              ("ordering_cost", fam_cols["planned_ordering_cost"]),
-                             ("total_cost", fam_cols["planned_annual_cost"])):
+                             ("total_cost", fam_cols["planned_annual_cost"]),
+                             ("fill_rate", fam_cols["planned_fill_rate"]),
+                             ("on_hand", fam_cols["planned_on_hand"])):
             base = planned_cols.get(name, np.full(len(out), np.nan))
             planned_cols[name] = np.where(grouped, values, base)
     flags = [[] for _ in range(len(out))]
@@ -915,6 +917,7 @@ def run_simulation(
 
 
 FAMILY_COLUMNS = ["family", "site", "base_cycle_days", "major_cost"]  # required in ``families``
+GROUP_PLANNED = ("cycle_multiple", "annual_cost", "fill_rate", "expected_on_hand")  # optional (groups.csv)
 MULTIPLE_TOL = 1e-3  # an item's interval must be within this many base cycles of a whole multiple
 DUE_CYCLES_LIMIT = 100_000  # planned joint orders: base cycles scanned for "some item due"
 
@@ -941,7 +944,7 @@ def family_costs(sim: NetworkSimulation, families: pd.DataFrame, table: pd.DataF
         The simulation, with its review log (``review_orders``).
     families : DataFrame
         One row per grouped (site, item): ``family, site, item, base_cycle_days, major_cost, line_cost`` and
-        optionally ``cycle_multiple, annual_cost`` (planned, from ``groups.csv``).
+        optionally ``cycle_multiple, annual_cost, fill_rate, expected_on_hand`` (planned, ``groups.csv``).
     table : DataFrame
         The simulated item-site rows (``site, item``).
     periodic : ndarray of bool, (rows,)
@@ -965,7 +968,7 @@ def family_costs(sim: NetworkSimulation, families: pd.DataFrame, table: pd.DataF
     columns : dict
         Per row: ``grouped`` (bool), ``family`` (name), ``family_index`` (-1 where not grouped),
         ``line_cost`` and ``shared_cost`` (K, rows), ``planned_orders_per_year``, ``planned_ordering_cost``,
-        ``planned_annual_cost``.
+        ``planned_annual_cost``, ``planned_fill_rate``, ``planned_on_hand`` (NaN where not given).
 
     Examples
     --------
@@ -1083,6 +1086,11 @@ def family_costs(sim: NetworkSimulation, families: pd.DataFrame, table: pd.DataF
     planned_annual = np.full(rows, np.nan)
     if "annual_cost" in joined:
         planned_annual[row] = pd.to_numeric(joined["annual_cost"], errors="coerce").to_numpy(float)
+    planned_service = {}
+    for name, col in (("fill_rate", "fill_rate"), ("on_hand", "expected_on_hand")):
+        planned_service[name] = np.full(rows, np.nan)
+        if col in joined:
+            planned_service[name][row] = pd.to_numeric(joined[col], errors="coerce").to_numpy(float)
 
     recs = []
     for f, name in enumerate(names):
@@ -1105,7 +1113,9 @@ def family_costs(sim: NetworkSimulation, families: pd.DataFrame, table: pd.DataF
         recs.append(rec)
     columns = {"grouped": grouped, "family": fam_name, "family_index": fam_index, "line_cost": line_cost,
                "shared_cost": shared_row, "planned_orders_per_year": planned_orders,
-               "planned_ordering_cost": planned_ordering, "planned_annual_cost": planned_annual}
+               "planned_ordering_cost": planned_ordering, "planned_annual_cost": planned_annual,
+               "planned_fill_rate": planned_service["fill_rate"],
+               "planned_on_hand": planned_service["on_hand"]}
     return pd.DataFrame(recs), columns
 
 
@@ -1364,7 +1374,8 @@ def _merge_groups(given, path: Path, itemsites):
     missing = [c for c in need if c not in groups.columns]
     if missing:
         raise ValueError(f"{path.name}: missing column(s) {', '.join(missing)}")
-    extra = [c for c in ("family", "base_cycle_days", "cycle_multiple", "annual_cost") if c in groups.columns]
+    extra = [c for c in ("family", "base_cycle_days", "cycle_multiple", "annual_cost", "fill_rate",
+                         "expected_on_hand") if c in groups.columns]
     groups = groups[need + extra].copy()
     for c in ("order_interval_days", "order_up_to"):
         groups[c] = pd.to_numeric(groups[c], errors="coerce")
@@ -1431,7 +1442,7 @@ def group_families(case: Any, itemsites: pd.DataFrame, groups: pd.DataFrame) -> 
         major, minor = known[key]
         recs.append({"family": key[0], "site": key[1], "item": key[2], "base_cycle_days": r.base_cycle_days,
                      "major_cost": major, "line_cost": minor,
-                     **{c: getattr(r, c) for c in ("cycle_multiple", "annual_cost") if c in groups.columns}})
+                     **{c: getattr(r, c) for c in GROUP_PLANNED if c in groups.columns}})
     return pd.DataFrame(recs) if recs else None
 
 

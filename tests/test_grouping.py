@@ -333,6 +333,12 @@ def test_warehouse_grouping_on_store_batches_matches_simulation(case_writer):
                 assert (abs(on_hand - t.loc[("wh", item), "on_hand"])
                         <= 1.5 * t.loc[("wh", item), "on_hand_ci"] + ON_HAND_TOL * on_hand)
         assert errors[True] < errors[False]
+        # the grouping's own predictions in groups.csv (one-term normal loss, as the model prices them)
+        sim_row = t.loc[("wh", item)]
+        assert (abs(g.loc[item, "fill_rate"] - sim_row["fill_rate"])
+                <= 1.5 * sim_row["fill_rate_ci"] + FILL_TOL)
+        assert (abs(g.loc[item, "expected_on_hand"] - sim_row["on_hand"])
+                <= 1.5 * sim_row["on_hand_ci"] + ON_HAND_TOL * sim_row["on_hand"])
 
 
 def test_grouping_demand_basis_switch(case_writer):

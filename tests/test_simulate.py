@@ -702,6 +702,8 @@ def test_rqnet_simulate_groups_share_the_supplier_order_cost(case_writer, tmp_pa
     frame = pd.read_csv(out / "simulation.csv").set_index(["site", "item"])
     assert frame.loc[("wh", "a"), "family"] == "wh/sup1"
     assert frame.loc[("wh", "a"), "planned_total_cost"] == 900
+    # the (R, Q) plan's service figures do not apply to a grouped row (none given in this groups file)
+    assert np.isnan(frame.loc[("wh", "a"), "planned_fill_rate"])
     grouped_cost = frame.loc[("wh", ["a", "b"]), "ordering_cost"].sum()
     assert grouped_cost == pytest.approx(fam["ordering_cost"], rel=1e-5)
     # item c (not grouped) still pays its supplier's full order cost per order
