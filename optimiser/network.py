@@ -252,6 +252,16 @@ def _settings_value(settings, name, default):
     return getattr(settings, name, default) if settings is not None else default
 
 
+def _with_target_and_backorder(table: pd.DataFrame, settings) -> pd.DataFrame:
+    """``table`` plus ``_target`` (the row's target, else the case's) and ``_back`` (backorder cost or 0)."""
+    target_default = _settings_value(settings, "target", None)
+    target = table["target"].to_numpy(dtype=float) if "target" in table else np.full(len(table), np.nan)
+    if target_default is not None:
+        target = np.where(np.isfinite(target), target, float(target_default))
+    back = table["backorder_cost"].to_numpy(dtype=float)
+    return table.assign(_target=target, _back=np.where(np.isfinite(back), back, 0.0))
+
+
 def _two_level_inputs(table: pd.DataFrame, rows: np.ndarray, settings) -> ech.TwoLevelInputs:
     """Inputs for blocks whose slot 0 is the warehouse and slots 1.. are its stores."""
     wh = rows[:, 0]
@@ -261,13 +271,7 @@ def _two_level_inputs(table: pd.DataFrame, rows: np.ndarray, settings) -> ech.Tw
     mode = _settings_value(settings, "mode", "cost")
     basis = _settings_value(settings, "backorder_basis", "per_unit")
     days = float(_settings_value(settings, "days_per_year", 365.0))
-    target_default = _settings_value(settings, "target", None)
-    target = table["target"].to_numpy(dtype=float) if "target" in table else np.full(len(table), np.nan)
-    if target_default is not None:
-        target = np.where(np.isfinite(target), target, float(target_default))
-    table = table.assign(_target=target)
-    back = table["backorder_cost"].to_numpy(dtype=float)
-    table = table.assign(_back=np.where(np.isfinite(back), back, 0.0))
+    table = _with_target_and_backorder(table, settings)
 
     def store(name, fill=0.0):
         return _col(table, st, name, fill)
@@ -318,12 +322,10 @@ def _frame_two_level(
     q0 = res.warehouse_order_quantity
     h0 = inp.warehouse_holding_cost
     cycle0 = h0 * q0 / 2.0
-    lam0 = res.warehouse_ltd_mean / np.where(inp.warehouse_lead > 0, inp.warehouse_lead, 1.0)
     ss0 = res.warehouse_reorder_point - res.warehouse_ltd_mean
     sd0 = res.warehouse_ltd_sd
     z0 = np.where(sd0 > 0, ss0 / np.where(sd0 > 0, sd0, 1.0), np.nan)
     through = (np.where(act, inp.store_mean, 0.0).sum(axis=1) + inp.warehouse_own_mean) * days
-    del lam0
     total0 = res.warehouse_ordering_cost + res.warehouse_holding_cost + res.warehouse_backorder_cost
     code = table["distribution"].to_numpy(dtype=np.int64)
     warehouse = pd.DataFrame(
@@ -353,37 +355,42 @@ def _frame_two_level(
             "note": np.zeros(n, dtype=np.int64),
         }
     )
+    from optimiser import plan as pl
+
     item_of_store = np.nonzero(act)[0]
-    cyc = np.asarray(pol.cycle_stock_cost, dtype=float)
-    saf = np.asarray(pol.safety_stock_cost, dtype=float)
-    stores = pd.DataFrame(
-        {
-            "site": table["site"].to_numpy(dtype=object)[st_rows],
-            "item": table["item"].to_numpy(dtype=object)[st_rows],
-            "order_quantity": np.asarray(pol.order_quantity, dtype=float),
-            "reorder_point": np.asarray(pol.reorder_point, dtype=float),
-            "safety_stock": np.asarray(pol.safety_stock, dtype=float),
-            "lead_time_days": inp.store_lead[act] + res.mean_delay[item_of_store],
-            "lead_time_demand_mean": res.store_ltd_mean[act],
-            "lead_time_demand_sd": res.store_ltd_sd[act],
-            "cycle_service": np.asarray(pol.cycle_service, dtype=float),
-            "fill_rate": np.asarray(pol.fill_rate, dtype=float),
-            "expected_on_hand": np.asarray(pol.expected_on_hand, dtype=float),
-            "expected_backorders": np.asarray(pol.expected_backorders, dtype=float),
-            "orders_per_year": np.asarray(pol.orders_per_year, dtype=float),
-            "ordering_cost": np.asarray(pol.ordering_cost, dtype=float),
-            "holding_cost": cyc + saf,
-            "backorder_cost": np.asarray(pol.backorder_cost, dtype=float),
-            "total_cost": np.asarray(pol.total_cost, dtype=float),
-            "cycle_stock_cost": cyc,
-            "safety_stock_cost": saf,
-            "z": np.asarray(pol.z, dtype=float),
-            "distribution": code[st_rows].astype(np.int8),
-            "expected_delay_days": res.mean_delay[item_of_store],
-            "note": np.asarray(pol.note).astype(np.int64),
-        }
-    )
+    delay = res.mean_delay[item_of_store]
+    stores = pl._policy_frame(
+        table.iloc[st_rows], pol, inp.store_lead[act] + delay, res.store_ltd_mean[act], res.store_ltd_sd[act]
+    ).assign(expected_delay_days=delay)
     return pd.concat([warehouse, stores], ignore_index=True)[POLICY_COLUMNS]
+
+
+def _summary_frame(
+    table, rows, root, stores, ss_wh, ss_st, res_cost, seed_cost, nominal, figures
+) -> pd.DataFrame:
+    """Summary rows of one block: safety stock split, costs and savings; ``figures`` the demand-weighted
+    store figures (``mean_delay_days, single_site_mean_delay_days, store_fill_rate,
+    single_site_store_fill_rate``)."""
+    tot = ss_wh + ss_st
+    savings = seed_cost - res_cost
+    return pd.DataFrame(
+        {
+            "root": root,
+            "item": table["item"].to_numpy(dtype=object)[rows[:, 0]],
+            "stores": stores,
+            "warehouse_safety_stock": ss_wh,
+            "stores_safety_stock": ss_st,
+            "warehouse_share": np.where(np.abs(tot) > 0, ss_wh / np.where(np.abs(tot) > 0, tot, 1.0), np.nan),
+            "network_cost": res_cost,
+            "single_site_cost": nominal,
+            "single_site_network_cost": seed_cost,
+            "savings": savings,
+            "savings_pct": np.where(
+                seed_cost > 0, 100.0 * savings / np.where(seed_cost > 0, seed_cost, 1.0), np.nan
+            ),
+            **figures,
+        }
+    )[SUMMARY_COLUMNS]
 
 
 def _summary_two_level(table, rows, res, seed, inp, root, seed_nominal) -> pd.DataFrame:
@@ -394,7 +401,6 @@ def _summary_two_level(table, rows, res, seed, inp, root, seed_nominal) -> pd.Da
         item_of_store, weights=np.asarray(res.store_policy.safety_stock, dtype=float), minlength=n
     )
     ss_wh = res.warehouse_reorder_point - res.warehouse_ltd_mean
-    tot = ss_wh + ss_st
     demand = inp.store_mean[act]
 
     def fill(r):
@@ -402,30 +408,16 @@ def _summary_two_level(table, rows, res, seed, inp, root, seed_nominal) -> pd.Da
         w = np.bincount(item_of_store, weights=demand, minlength=n)
         return np.bincount(item_of_store, weights=f * demand, minlength=n) / np.where(w > 0, w, 1.0)
 
-    savings = seed.network_cost - res.network_cost
-    return pd.DataFrame(
-        {
-            "root": root,
-            "item": table["item"].to_numpy(dtype=object)[rows[:, 0]],
-            "stores": act.sum(axis=1),
-            "warehouse_safety_stock": ss_wh,
-            "stores_safety_stock": ss_st,
-            "warehouse_share": np.where(np.abs(tot) > 0, ss_wh / np.where(np.abs(tot) > 0, tot, 1.0), np.nan),
-            "network_cost": res.network_cost,
-            "single_site_cost": seed_nominal,
-            "single_site_network_cost": seed.network_cost,
-            "savings": savings,
-            "savings_pct": np.where(
-                seed.network_cost > 0,
-                100.0 * savings / np.where(seed.network_cost > 0, seed.network_cost, 1.0),
-                np.nan,
-            ),
-            "mean_delay_days": res.mean_delay,
-            "single_site_mean_delay_days": seed.mean_delay,
-            "store_fill_rate": fill(res),
-            "single_site_store_fill_rate": fill(seed),
-        }
-    )[SUMMARY_COLUMNS]
+    figures = {
+        "mean_delay_days": res.mean_delay,
+        "single_site_mean_delay_days": seed.mean_delay,
+        "store_fill_rate": fill(res),
+        "single_site_store_fill_rate": fill(seed),
+    }
+    return _summary_frame(
+        table, rows, root, act.sum(axis=1), ss_wh, ss_st, res.network_cost, seed.network_cost, seed_nominal,
+        figures,
+    )
 
 
 def _single_site_frame(table: pd.DataFrame, settings) -> pd.DataFrame:
@@ -568,17 +560,13 @@ def _run(itemsites: pd.DataFrame, settings, given: np.ndarray | None, return_sum
 
 def _seed_nominal_cost(inp: ech.TwoLevelInputs) -> np.ndarray:
     """Sum of the sites' own planned costs when each is planned alone (what single-site planning promises)."""
-    from models import single_site as ss
-
     n = inp.n
-    act = inp.store_active
     zero = np.zeros(n)
     rows, _, _, _, pol = ech._optimise_stores(inp, zero, zero, inp.store_fixed_q)
     store = np.bincount(rows, weights=np.asarray(pol.total_cost, dtype=float), minlength=n)
-    store_r, store_q, r0, q0, demand = ech.single_site_seed(inp)
+    _, _, r0, q0, demand = ech.single_site_seed(inp)
     state = ech.warehouse_moments(ech._lattice_q0(demand, q0), r0, q0)
     ordering, holding, back, _ = ech._warehouse_rows(inp, demand, state, r0, q0)
-    del ss, act
     return store + ordering + holding + back
 
 
@@ -586,12 +574,7 @@ def _tree_inputs(table: pd.DataFrame, rows: np.ndarray, parent: np.ndarray, sett
     active = rows >= 0
     code = table["distribution"].to_numpy(dtype=np.int64)
     mode = _settings_value(settings, "mode", "cost")
-    target_default = _settings_value(settings, "target", None)
-    target = table["target"].to_numpy(dtype=float) if "target" in table else np.full(len(table), np.nan)
-    if target_default is not None:
-        target = np.where(np.isfinite(target), target, float(target_default))
-    back = table["backorder_cost"].to_numpy(dtype=float)
-    table = table.assign(_target=target, _back=np.where(np.isfinite(back), back, 0.0))
+    table = _with_target_and_backorder(table, settings)
 
     def col(name, fill=0.0):
         return _col(table, rows, name, fill)
@@ -660,31 +643,20 @@ def _summary_tree(table, rows, res, seed, inp, root) -> pd.DataFrame:
     w = np.where(w > 0, w, 1.0)
     ss_wh = np.nansum(np.where(internal, res.safety_stock, 0.0), axis=1)
     ss_st = np.nansum(np.where(leaf, res.safety_stock, 0.0), axis=1)
-    tot = ss_wh + ss_st
-    savings = seed.network_cost - res.network_cost
-    return pd.DataFrame(
-        {
-            "root": root,
-            "item": table["item"].to_numpy(dtype=object)[rows[:, 0]],
-            "stores": leaf.sum(axis=1),
-            "warehouse_safety_stock": ss_wh,
-            "stores_safety_stock": ss_st,
-            "warehouse_share": np.where(np.abs(tot) > 0, ss_wh / np.where(np.abs(tot) > 0, tot, 1.0), np.nan),
-            "network_cost": res.network_cost,
-            "single_site_cost": np.full(rows.shape[0], np.nan),
-            "single_site_network_cost": seed.network_cost,
-            "savings": savings,
-            "savings_pct": np.where(
-                seed.network_cost > 0,
-                100.0 * savings / np.where(seed.network_cost > 0, seed.network_cost, 1.0),
-                np.nan,
-            ),
-            "mean_delay_days": (np.where(leaf, res.delay, 0.0) * demand).sum(axis=1) / w,
-            "single_site_mean_delay_days": (np.where(leaf, seed.delay, 0.0) * demand).sum(axis=1) / w,
-            "store_fill_rate": (np.where(leaf, res.fill_rate, 0.0) * demand).sum(axis=1) / w,
-            "single_site_store_fill_rate": (np.where(leaf, seed.fill_rate, 0.0) * demand).sum(axis=1) / w,
-        }
-    )[SUMMARY_COLUMNS]
+
+    def weighted(values):
+        return (np.where(leaf, values, 0.0) * demand).sum(axis=1) / w
+
+    figures = {
+        "mean_delay_days": weighted(res.delay),
+        "single_site_mean_delay_days": weighted(seed.delay),
+        "store_fill_rate": weighted(res.fill_rate),
+        "single_site_store_fill_rate": weighted(seed.fill_rate),
+    }
+    return _summary_frame(
+        table, rows, root, leaf.sum(axis=1), ss_wh, ss_st, res.network_cost, seed.network_cost,
+        np.full(rows.shape[0], np.nan), figures,
+    )
 
 
 def _tree(table, rows, block, settings, given, summaries):
