@@ -109,6 +109,10 @@ def count_pmf(mean: np.ndarray, var: np.ndarray, width: int) -> tuple[np.ndarray
     -----
     Negative binomial with ``r = mean**2 / (var - mean)``, ``p = mean / var``:
     ``P(k) = Gamma(k + r) / (Gamma(r) k!) p**r (1 - p)**k``.
+
+    References
+    ----------
+    Johnson, N. L., Kemp, A. W. & Kotz, S. (2005). Univariate Discrete Distributions, 3rd ed. Wiley.
     """
     mean = np.asarray(mean, dtype=float)
     var = np.asarray(var, dtype=float)
@@ -179,6 +183,11 @@ def order_stream_pmf(demand_pmf: np.ndarray, q: np.ndarray) -> np.ndarray:
     -----
     With ``Y = D + V``, ``F_Y(y) = (C(y) - C(y - Q)) / Q`` where ``C(y) = sum_{u <= y} F_D(u)``; the mass at
     ``x = kQ`` is ``F_Y(x + Q - 1) - F_Y(x - 1)``.
+
+    References
+    ----------
+    Axsäter, S. (1993). Exact and approximate evaluation of batch-ordering policies for two-level inventory
+    systems. Operations Research 41(4), 777-785.
     """
     n, width = demand_pmf.shape
     q = np.asarray(q, dtype=np.int64).reshape(n)
@@ -237,6 +246,11 @@ def order_stream_variance(mean: np.ndarray, var: np.ndarray, q: np.ndarray) -> n
     least ``BATCH_SERIES_RATIO * Q``; otherwise the sum over the intervals ``[jQ, (j + 1)Q)`` of truncated
     normal moments). When the demand spread is large against ``Q`` the correction tends to ``Q**2/6``; when
     ``Q`` is large against the mean demand it is about ``E[D] Q``.
+
+    References
+    ----------
+    Axsäter, S. (1993). Exact and approximate evaluation of batch-ordering policies for two-level inventory
+    systems. Operations Research 41(4), 777-785.
     """
     mean = np.asarray(mean, dtype=float)
     var = np.maximum(np.asarray(var, dtype=float), 0.0)
@@ -363,6 +377,11 @@ def warehouse_demand(
     negative binomial fitted to the exact mean and the variance
     ``sum_i [s_i**2 L0 + E r_i (Q_i - r_i)] + own + (sum d)**2 sL0**2``, which is also the variance used for
     normal items (then a normal).
+
+    References
+    ----------
+    Axsäter, S. (1993). Exact and approximate evaluation of batch-ordering policies for two-level inventory
+    systems. Operations Research 41(4), 777-785.
     """
     store_mean = np.atleast_2d(np.asarray(store_mean, dtype=float))
     n, m = store_mean.shape
@@ -504,6 +523,16 @@ def _convolve_streams(win_mean, win_var, q, active, own_mean, own_var, width):
 def normal_loss_moments(z: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Standard normal partial moments ``H_k(z) = E[((Z - z)^+)^k]`` for k = 1, 2, 3.
 
+    Parameters
+    ----------
+    z : ndarray
+        Standardised levels (any shape).
+
+    Returns
+    -------
+    h1, h2, h3 : ndarray
+        ``H_1(z), H_2(z), H_3(z)``, each of the shape of ``z``.
+
     Examples
     --------
     >>> [round(float(v), 6) for v in normal_loss_moments(np.array(0.0))]
@@ -513,6 +542,10 @@ def normal_loss_moments(z: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarr
     -----
     ``H1 = phi - z Phi_c``, ``H2 = (z**2 + 1) Phi_c - z phi``, ``H3 = (z**2 + 2) phi - z (z**2 + 3) Phi_c``,
     with ``dH_k/dz = -k H_{k-1}``; ``Phi_c`` is computed as ``ndtr(-z)`` (no cancellation).
+
+    References
+    ----------
+    Zipkin, P. H. (2000). Foundations of Inventory Management. McGraw-Hill.
     """
     z = np.asarray(z, dtype=float)
     phi = np.exp(-0.5 * z * z) / np.sqrt(2.0 * np.pi)
@@ -618,7 +651,26 @@ def _strided_cumsum(a: np.ndarray, g: int) -> np.ndarray:
 
 
 def discrete_tables(demand: WarehouseDemand) -> list:
-    """Loss tables of the discrete rows, one per width block: list of ``(rows, _DiscreteLoss)``."""
+    """Loss tables of the discrete rows of ``demand``, one per width block.
+
+    Parameters
+    ----------
+    demand : WarehouseDemand
+        From :func:`warehouse_demand`.
+
+    Returns
+    -------
+    list of (ndarray, _DiscreteLoss)
+        Row indices of a block and its cumulative loss tables, for :func:`warehouse_moments` (``tables=``)
+        when it is called many times on the same demand.
+
+    Examples
+    --------
+    >>> wd = warehouse_demand(np.array([[0.5]]), np.sqrt([[0.5]]), np.array([[1]]), np.array([[True]]),
+    ...                       np.array([2.0]), np.array([0.0]))
+    >>> [rows.tolist() for rows, _ in discrete_tables(wd)]
+    [[0]]
+    """
     return [(rows, _DiscreteLoss(pmf, demand.step[rows])) for rows, pmf in demand.blocks if rows.size]
 
 
@@ -656,6 +708,12 @@ def warehouse_moments(
     ``E[B0] = mean_y E(X - y)^+``, ``E[B0^2] = mean_y E((X - y)^+)^2``, ``E[I0] = E[IP] - E[X] + E[B0]``.
     Normal: ``E[B0] = sigma**2 (H2(z_R) - H2(z_RQ)) / (2 Q0)``, ``E[B0^2] = sigma**3 (H3(z_R) - H3(z_RQ)) / (3
     Q0)``.
+
+    References
+    ----------
+    Hadley, G. & Whitin, T. M. (1963). Analysis of Inventory Systems. Prentice-Hall.
+    Axsäter, S. (1993). Exact and approximate evaluation of batch-ordering policies for two-level inventory
+    systems. Operations Research 41(4), 777-785.
     """
     r0 = np.asarray(reorder_point, dtype=float)
     q0 = np.asarray(order_quantity, dtype=float)
@@ -764,6 +822,11 @@ def arrival_variance(demand: WarehouseDemand, window: np.ndarray) -> np.ndarray:
     depends on the phase of the stores' order cycles, and so does the wait itself; the phase is therefore not
     noise independent of the wait. For one-for-one Poisson stores this is ``lambda0 w``, the exact
     distributional Little's law; for regular batch streams it tends to the fluid limit ``W = B0 / lambda0``.
+
+    References
+    ----------
+    Keilson, J. & Servi, L. D. (1988). A distributional form of Little's law. Operations Research Letters
+    7(5), 223-227.
     """
     w = np.asarray(window, dtype=float)
     if demand.stream_long is None:
@@ -876,6 +939,11 @@ def store_ltd_moments(
     Notes
     -----
     ``mean = d (L + E[W])``, ``var = s**2 (L + E[W]) + d**2 (sL**2 + Var(W))`` (Svoronos & Zipkin 1988).
+
+    References
+    ----------
+    Svoronos, A. & Zipkin, P. (1988). Estimating the performance of multi-level inventory systems. Operations
+    Research 36(1), 57-72.
     """
     t = lead + mean_delay
     mean = daily_mean * t
@@ -1319,10 +1387,50 @@ def golden_search(
 ):
     """Vectorised minimisation of ``f`` (array of x -> array of values) per element over ``[lo, hi]``.
 
-    A grid of ``points`` candidates (plus ``extra``, e.g. the incumbent) brackets the minimum; golden-section
-    steps (one evaluation of ``f`` per step) narrow the bracket to ``tol`` (integers: to adjacent points).
-    With ``subset`` the steps call ``f(x, idx)`` on the elements not yet converged only. Returns ``(x, f(x),
-    iterations, converged)``. Assumes unimodality within the bracket.
+    Parameters
+    ----------
+    f : callable
+        ``f(x)`` -> values, element-wise over arrays of shape (n,); with ``subset``, ``f(x, idx)`` on the
+        elements ``idx`` only.
+    lo, hi : ndarray, shape (n,)
+        Search interval per element.
+    integer : ndarray of bool, shape (n,)
+        Elements searched over the integers.
+    tol : ndarray, shape (n,)
+        Final bracket width (integers: at least adjacent points).
+    points : int
+        Grid candidates that bracket the minimum.
+    max_iter : int
+        Golden-section steps at the most.
+    extra : ndarray, shape (n,), optional
+        One more candidate per element (e.g. the incumbent).
+    subset : bool
+        Call ``f`` on the elements not yet converged only.
+
+    Returns
+    -------
+    x, fx : ndarray, shape (n,)
+        Best point found and its value.
+    iterations : ndarray of int, shape (n,)
+    converged : ndarray of bool, shape (n,)
+
+    Examples
+    --------
+    >>> x, fx, its, ok = golden_search(lambda x: (x - 2.3) ** 2, np.array([0.0]), np.array([10.0]),
+    ...                                np.array([False]), np.array([1e-6]))
+    >>> round(float(x[0]), 4), bool(ok[0])
+    (2.3, True)
+
+    Notes
+    -----
+    A grid of ``points`` candidates (plus ``extra``) brackets the minimum; golden-section steps (one
+    evaluation of ``f`` per step) narrow the bracket by the factor ``(sqrt(5) - 1) / 2``. Assumes
+    unimodality within the bracket.
+
+    References
+    ----------
+    Kiefer, J. (1953). Sequential minimax search for a maximum. Proceedings of the American Mathematical
+    Society 4(3), 502-506.
     """
     n = lo.size
     lo = np.where(integer, np.floor(lo), lo)
@@ -1399,6 +1507,23 @@ def _lattice_q0(demand: WarehouseDemand, q0: np.ndarray) -> WarehouseDemand:
     return WarehouseDemand(**{**demand.__dict__, "step": np.where(ok, demand.step, 1)})
 
 
+def _store_order_demand(inp: TwoLevelInputs, store_q: np.ndarray) -> WarehouseDemand:
+    """Warehouse demand from the stores' orders in batches of ``store_q`` (stores with no demand, or no
+    positive finite Q, send no orders) plus the warehouse's own customers."""
+    flowing = inp.store_active & (inp.store_mean > 0) & np.isfinite(store_q) & (store_q > 0)
+    return warehouse_demand(
+        np.where(flowing, inp.store_mean, 0.0),
+        inp.store_sd,
+        np.where(flowing, store_q, 1.0),
+        inp.store_count,
+        inp.warehouse_lead,
+        inp.warehouse_lead_sd,
+        inp.warehouse_own_mean,
+        inp.warehouse_own_sd,
+        inp.warehouse_count,
+    )
+
+
 def evaluate_two_level(
     inp: TwoLevelInputs,
     store_reorder_point: np.ndarray,
@@ -1438,19 +1563,8 @@ def evaluate_two_level(
     Svoronos & Zipkin (1988).
     """
     sq = np.asarray(store_order_quantity, dtype=float)
-    flowing = inp.store_active & (inp.store_mean > 0) & np.isfinite(sq) & (sq > 0)
     if demand is None:  # (optional argument: the same demand already built by the caller for these Q)
-        demand = warehouse_demand(
-            np.where(flowing, inp.store_mean, 0.0),
-            inp.store_sd,
-            np.where(flowing, sq, 1.0),
-            inp.store_count,
-            inp.warehouse_lead,
-            inp.warehouse_lead_sd,
-            inp.warehouse_own_mean,
-            inp.warehouse_own_sd,
-            inp.warehouse_count,
-        )
+        demand = _store_order_demand(inp, sq)
     r0 = np.asarray(warehouse_reorder_point, dtype=float)
     q0 = np.asarray(warehouse_order_quantity, dtype=float)
     demand = _lattice_q0(demand, q0)
@@ -1481,9 +1595,33 @@ def evaluate_two_level(
 def single_site_seed(inp: TwoLevelInputs):
     """Each site planned alone: stores on their transit time, the warehouse on the aggregated order stream.
 
-    Returns ``(store_r, store_q, warehouse_r, warehouse_q, demand)``. The warehouse has no cost of its own for
-    keeping stores waiting; where it has no backorder cost or target of its own it is planned with the
-    demand-weighted mean of its stores' values (the way a site planned alone would be set up).
+    Parameters
+    ----------
+    inp : TwoLevelInputs
+
+    Returns
+    -------
+    store_r, store_q : ndarray, shape (n, m)
+        Stores' reorder points and order quantities (``NaN`` Q for an active store without demand).
+    warehouse_r, warehouse_q : ndarray, shape (n,)
+    demand : WarehouseDemand
+        Warehouse lead-time demand from the stores' orders in batches of ``store_q``.
+
+    Examples
+    --------
+    See ``tests/test_echelon.py`` and ``tests/test_network.py`` (the seed is the single-site plan that the
+    network plan is compared with).
+
+    Notes
+    -----
+    The warehouse has no cost of its own for keeping stores waiting; where it has no backorder cost or
+    target of its own it is planned with the demand-weighted mean of its stores' values (the way a site
+    planned alone would be set up).
+
+    References
+    ----------
+    Axsäter, S. (2003). Approximate optimization of a two-level distribution inventory system. International
+    Journal of Production Economics 81-82, 545-553.
     """
     from models import single_site as ss
 
@@ -1496,18 +1634,7 @@ def single_site_seed(inp: TwoLevelInputs):
     q_seed = np.asarray(pol.order_quantity, dtype=float)
     store_q[act] = np.where(q_seed > 0, q_seed, np.nan)  # zero-demand stores keep a free Q
     store_r[act] = pol.reorder_point
-    flowing = act & (inp.store_mean > 0) & np.isfinite(store_q)
-    demand = warehouse_demand(
-        np.where(flowing, inp.store_mean, 0.0),
-        inp.store_sd,
-        np.where(flowing, store_q, 1.0),
-        inp.store_count,
-        inp.warehouse_lead,
-        inp.warehouse_lead_sd,
-        inp.warehouse_own_mean,
-        inp.warehouse_own_sd,
-        inp.warehouse_count,
-    )
+    demand = _store_order_demand(inp, store_q)
     w = np.where(act, inp.store_mean, 0.0)
     wsum = np.where(w.sum(axis=1) > 0, w.sum(axis=1), 1.0)
     proxy_b = (w * np.where(act, inp.store_backorder_cost, 0.0)).sum(axis=1) / wsum
@@ -2042,6 +2169,13 @@ def evaluate_tree(inp: TreeInputs, reorder_point: np.ndarray, order_quantity: np
     Var W)``) is fitted (negative binomial / normal), its state gives the delay moments of its children
     (:func:`delay_moments`); leaves use the single-site functions. For two levels
     :func:`evaluate_two_level` uses the exact convolution at the root instead.
+
+    References
+    ----------
+    Sherbrooke, C. C. (1968). METRIC: a multi-echelon technique for recoverable item control. Operations
+    Research 16(1), 122-141.
+    Svoronos, A. & Zipkin, P. (1988). Estimating the performance of multi-level inventory systems. Operations
+    Research 36(1), 57-72.
     """
     return _tree_pass(
         inp,
@@ -2079,6 +2213,13 @@ def optimise_tree(
     each slot the reorder point runs over a bracketing grid (vectorised over items) with every leaf
     re-optimised
     for the resulting delays and the other internal slots fixed, minimising the network cost per item.
+
+    References
+    ----------
+    Svoronos, A. & Zipkin, P. (1988). Estimating the performance of multi-level inventory systems. Operations
+    Research 36(1), 57-72.
+    Axsäter, S. (2003). Approximate optimization of a two-level distribution inventory system. International
+    Journal of Production Economics 81-82, 545-553.
     """
     from models import single_site as ss
 
@@ -2229,6 +2370,11 @@ def wait_points(
     ``v = E[W^2] / P - m**2``, represented by the two-point law with the mean, variance and skewness
     ``2 sqrt(v) / m`` of a gamma variable: ``m + sqrt(v) x`` with ``x = (g -+ sqrt(g**2 + 4)) / 2``, always
     non-negative. ``P`` is raised to ``E[W]**2 / E[W^2]`` where needed so that ``v >= 0``.
+
+    References
+    ----------
+    Svoronos, A. & Zipkin, P. (1988). Estimating the performance of multi-level inventory systems. Operations
+    Research 36(1), 57-72.
     """
     ew = np.asarray(mean_delay, dtype=float)
     ew2 = np.asarray(var_delay, dtype=float) + ew * ew
@@ -2402,6 +2548,11 @@ def leaf_policies(
     weighted sum of the single-site KPIs (``models.single_site.evaluate_policy``). The two-moment version
     (one negative binomial / normal with the variance ``s**2 (L + E W) + d**2 (sL**2 + Var W)``) has too thin
     a tail when the warehouse is rarely out of stock but then for long; the mixture keeps the atom at no wait.
+
+    References
+    ----------
+    Svoronos, A. & Zipkin, P. (1988). Estimating the performance of multi-level inventory systems. Operations
+    Research 36(1), 57-72.
     """
     from dataclasses import replace
 

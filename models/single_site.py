@@ -1255,6 +1255,15 @@ def optimise_policy(annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost, *
                      it, conv, note)
 
 
+def _by_kind(sel, dist):
+    """Split item-sites ``sel`` into normal, then count ones: yield ``(is_count, positions in sel, rows)``."""
+    disc = dist[sel] != NORMAL
+    for is_disc in (False, True):
+        loc = np.flatnonzero(disc == is_disc)
+        if loc.size:
+            yield is_disc, loc, sel[loc]
+
+
 def _R_for_Q(Qc, sel, D, mu, sd, A, h, b, dist, t, mode, basis):
     """Best R for given Q on the subset sel (mixed distributions). Returns (R, it, conv, flag)."""
     m = sel.size
@@ -1262,12 +1271,7 @@ def _R_for_Q(Qc, sel, D, mu, sd, A, h, b, dist, t, mode, basis):
     it = np.zeros(m, dtype=np.int64)
     conv = np.ones(m, dtype=bool)
     flag = np.zeros(m, dtype=bool)
-    disc = dist[sel] != NORMAL
-    for is_disc in (False, True):
-        loc = np.flatnonzero(disc == is_disc)
-        if not loc.size:
-            continue
-        g = sel[loc]
+    for is_disc, loc, g in _by_kind(sel, dist):
         if is_disc:
             c = _Counts(mu[g], sd[g], dist[g])
             Rr, st, fl = _best_R_counts(Qc[loc], c, D[g], h[g], b[g], mode, basis, t[g])
@@ -1280,12 +1284,7 @@ def _R_for_Q(Qc, sel, D, mu, sd, A, h, b, dist, t, mode, basis):
 
 def _mode_objective(Rc, Qc, sel, D, mu, sd, A, h, b, dist, mode, basis, rule):
     out = np.empty(sel.size)
-    disc = dist[sel] != NORMAL
-    for is_disc in (False, True):
-        loc = np.flatnonzero(disc == is_disc)
-        if not loc.size:
-            continue
-        g = sel[loc]
+    for is_disc, loc, g in _by_kind(sel, dist):
         c = _Counts(mu[g], sd[g], dist[g]) if is_disc else None
         if mode != "cost" and rule == "eoq":
             out[loc] = A[g] * D[g] / Qc[loc] + 0.5 * h[g] * Qc[loc]
