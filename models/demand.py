@@ -126,6 +126,12 @@ def choose_distribution(mean, variance, default, demand_class=None) -> np.ndarra
     otherwise normal. A count distribution is negative binomial when
     variance > (1 + AUTO_OVERDISPERSION)·mean, otherwise Poisson. Zero-mean items get Poisson.
 
+    References
+    ----------
+    Syntetos, A. A., Boylan, J. E. & Croston, J. D. (2005). On the categorization of demand patterns.
+    Journal of the Operational Research Society 56(5), 495-503 (intermittent and lumpy classes); the
+    mean cut-off for counts is common practice.
+
     Examples
     --------
     >>> choose_distribution([50.0, 2.0, 2.0], [100.0, 2.0, 8.0], "auto").tolist()

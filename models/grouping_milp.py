@@ -283,6 +283,11 @@ def make_family(
     -------
     Family
 
+    References
+    ----------
+    Goyal, S. K. (1974). Determination of optimum packaging frequency of items jointly replenished.
+    Management Science 21(4), 436-443.
+
     Examples
     --------
     >>> make_family(10.0, [1.0, 2.0], 1.0, 5.0).minor_cost.tolist()
@@ -485,6 +490,13 @@ def policy_costs(fam: Family, T: float, k: np.ndarray) -> tuple[np.ndarray, np.n
         ``s_i/(k_i T) + h_i D_i k_i T/2 +`` safety and backorder cost (:func:`periodic_review_cost`); the
         order-up-to level ``D_i (k_i T + L_i) + z_i sigma_i``. The family's own order cost is not included.
 
+    References
+    ----------
+    Goyal, S. K. (1974). Determination of optimum packaging frequency of items jointly replenished.
+    Management Science 21(4), 436-443.
+    Silver, E. A., Pyke, D. F., Peterson, R. (1998). Inventory Management and Production Planning and
+    Scheduling, 3rd ed., Wiley, ch. 7 (periodic review, order-up-to level).
+
     Examples
     --------
     >>> c, z, up = policy_costs(make_family(10.0, [1.0], [2.0], [100.0]), 0.1, np.array([1]))
@@ -518,6 +530,11 @@ def check_policy(fam: Family, T: float, k: np.ndarray) -> tuple[bool, tuple[str,
         Constraints met with equality (relative ``CHECK_TOL * 100``).
     violations : list of str
         One sentence per violated constraint.
+
+    References
+    ----------
+    Goyal, S. K. (1974). Determination of optimum packaging frequency of items jointly replenished.
+    Management Science 21(4), 436-443.
 
     Examples
     --------
@@ -806,6 +823,11 @@ def build_model(S: float, T: np.ndarray, index: list, cost: dict, load_v: dict, 
     cycle) and ``x[c,i,k]`` (item i every k cycles under c). Objective: ``sum S/T[c] y[c] + sum cost x``.
     Constraints, one rule per family: ``one_cycle``, ``one_multiple``, ``capacity_volume``,
     ``capacity_weight``, ``min_order_value``.
+
+    References
+    ----------
+    Goyal, S. K. (1974). Determination of optimum packaging frequency of items jointly replenished.
+    Management Science 21(4), 436-443.
 
     Examples
     --------

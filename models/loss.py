@@ -111,6 +111,11 @@ def normal_losses(z) -> tuple[np.ndarray, np.ndarray]:
     G, G2 : ndarray
         As :func:`normal_loss` and :func:`normal_loss2` (same formulas, bit-for-bit equal).
 
+    References
+    ----------
+    Silver, E. A., Pyke, D. F. & Peterson, R. (1998). Inventory Management and Production Planning and
+    Scheduling, 3rd ed., Wiley, Appendix B.
+
     Examples
     --------
     >>> [round(float(v), 6) for v in normal_losses(0.0)]
@@ -141,6 +146,10 @@ def normal_sf(z) -> np.ndarray:
     -------
     ndarray
 
+    References
+    ----------
+    Abramowitz, M. & Stegun, I. A. (1964). Handbook of Mathematical Functions, 26.2.
+
     Examples
     --------
     >>> float(normal_sf(30.0)) > 0  # 1 - cdf would give 0
@@ -159,6 +168,10 @@ def normal_cdf(z) -> np.ndarray:
     Returns
     -------
     ndarray
+
+    References
+    ----------
+    Abramowitz, M. & Stegun, I. A. (1964). Handbook of Mathematical Functions, 26.2.
 
     Examples
     --------
