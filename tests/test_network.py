@@ -227,6 +227,13 @@ DEFAULT_NETWORKS = [  # (seed, items, stores, speed, basis)
 # Known shortfalls (measured): with two fast stores ordering large batches the model overstates
 # the stores' shortages (network cost +14%); with eight slow stores behind a warehouse kept below zero one
 # store's fill rate is 2.9 points low. Kept in the set, marked, so that a fix shows as XPASS.
+# Measured cause (E[B0] and the mean delay agree with the simulator within 4% for the items that miss):
+# (1) Var(W) is too high where the warehouse backlog is one or two store batches (seed 21, item5: delay sd
+# 0.81 days against 0.66 simulated; the mixture's upper wait point, 9.3 days, lies beyond the longest
+# simulated wait, 6.3 days) and in seed 23, item4 (12.5 against 11.1 days); (2) the simulator ships part of
+# an order at once, while the store is evaluated as if each unit's wait delayed its whole order: with the
+# simulated wait distribution of each unit put into the mixture the store figures stay pessimistic (up to
+# 0.9 points in seed 21, 1.9 in seed 23); with whole-order shipping they agree within 0.2 points on average.
 _FEW_BATCHES = pytest.mark.xfail(reason="two fast stores, large batches: wait tail overstated (cost +14%)",
                                  strict=False)
 _NEGATIVE_R0 = pytest.mark.xfail(reason="slow stores, warehouse below zero: fill rate 2.9 points low",
