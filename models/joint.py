@@ -221,6 +221,12 @@ def optimal_multiples(cycle, minor_cost, holding_demand, k_max: int | None = Non
     return k.astype(np.int64)
 
 
+def _clipped_cycle(A, B, lower, upper) -> tuple[np.ndarray, np.ndarray]:
+    """Minimiser of ``A/T + B T/2`` over ``[lower, upper]`` (convex: ``sqrt(2A/B)`` clipped) and its cost."""
+    T = np.clip(np.sqrt(2.0 * A / B), lower, upper)
+    return T, A / T + 0.5 * T * B
+
+
 def exact_cyclic(major_cost: float, minor_cost, holding_demand) -> JointPolicy:
     """Exact optimum of ``TC(T, k)`` over all cyclic policies (T > 0, integer k >= 1).
 
@@ -297,8 +303,7 @@ def exact_cyclic(major_cost: float, minor_cost, holding_demand) -> JointPolicy:
     B = float(np.sum(k_top * H)) + np.concatenate(([0.0], np.cumsum(dB)))
     upper = np.concatenate(([np.inf], bp))
     lower = np.concatenate((bp, [T_lo]))
-    T_star = np.clip(np.sqrt(2.0 * A / B), lower, upper)
-    cost = A / T_star + 0.5 * T_star * B
+    T_star, cost = _clipped_cycle(A, B, lower, upper)
     best = int(np.argmin(cost))
     k_best = optimal_multiples(float(T_star[best]), s, H)
     # T*(k) for the k actually returned: no worse than g at the interval optimum (ties at breakpoints)
@@ -350,9 +355,9 @@ def roundy_bound(major_cost: float, minor_cost, holding_demand) -> RoundyBound:
     # m = number of items tied to T0 (m >= 1: for T0 <= tau_1 the objective S/T0 + const is decreasing)
     lo = ts
     hi = np.concatenate((ts[1:], [np.inf]))
-    t0 = np.clip(np.sqrt(2.0 * (S + cs[1:]) / ch[1:]), lo, hi)
     with np.errstate(divide="ignore"):  # t0 = 0 only on empty ranges of zero-minor-cost items: cost inf
-        cost = (S + cs[1:]) / t0 + 0.5 * t0 * ch[1:] + tail[1:]
+        t0, cost = _clipped_cycle(S + cs[1:], ch[1:], lo, hi)
+    cost = cost + tail[1:]
     m = int(np.argmin(cost))
     T0 = float(t0[m])
     cyc = np.empty(n)
