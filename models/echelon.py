@@ -1203,7 +1203,7 @@ def _store_codes(count: np.ndarray, mean: np.ndarray, sd: np.ndarray) -> np.ndar
     return np.where(count, np.where(over, md.NEGBIN, md.POISSON), md.NORMAL).astype(np.int8)
 
 
-def _warehouse_rows(inp: TwoLevelInputs, demand: WarehouseDemand, state: WarehouseState, r0, q0):
+def _warehouse_rows(inp: TwoLevelInputs, demand: WarehouseDemand, state: WarehouseState, q0):
     """Warehouse cost and service given its steady state."""
     lam0 = demand.rate
     own = inp.warehouse_own_mean
@@ -1219,10 +1219,10 @@ def _warehouse_rows(inp: TwoLevelInputs, demand: WarehouseDemand, state: Warehou
     return ordering, holding, back, fill
 
 
-def _store_args(inp: TwoLevelInputs, ew, vw, pw):
+def _store_args(inp: TwoLevelInputs):
+    """Item index of each active store and its :func:`leaf_policies` inputs (demand, lead time, costs)."""
     act = inp.store_active
     rows = np.nonzero(act)[0]
-    pw = np.zeros_like(ew) if pw is None else pw
     return rows, (
         inp.store_mean[act] * inp.days_per_year,
         inp.store_mean[act],
@@ -1237,43 +1237,35 @@ def _store_args(inp: TwoLevelInputs, ew, vw, pw):
     )
 
 
-def _optimise_stores(inp: TwoLevelInputs, ew, vw, store_q, pw=None, refine=False, mixture=True, mw=None):
-    rows, args = _store_args(inp, ew, vw, pw)
-    act = inp.store_active
+def _store_policies(inp: TwoLevelInputs, ew, vw, pw, mw, q_active, **options):
+    """:func:`leaf_policies` on the active stores behind the warehouse delay ``(ew, vw, pw, mw)`` per item."""
+    rows, args = _store_args(inp)
     pwv = np.zeros_like(ew) if pw is None else pw
     pol, mean, sd, codes = leaf_policies(
         *args,
-        store_q[act],
-        inp.store_pack[act],
+        q_active,
+        inp.store_pack[inp.store_active],
         ew[rows],
         vw[rows],
         pwv[rows],
         mode=inp.mode,
         basis=inp.backorder_basis,
-        refine=refine,
-        mixture=mixture,
         max_wait=None if mw is None else mw[rows],
+        **options,
     )
     return rows, mean, sd, codes, pol
+
+
+def _optimise_stores(inp: TwoLevelInputs, ew, vw, store_q, pw=None, refine=False, mixture=True, mw=None):
+    q = store_q[inp.store_active]
+    return _store_policies(inp, ew, vw, pw, mw, q, refine=refine, mixture=mixture)
 
 
 def _evaluate_stores(inp: TwoLevelInputs, ew, vw, store_r, store_q, pw=None, mw=None):
-    rows, args = _store_args(inp, ew, vw, pw)
     act = inp.store_active
-    pwv = np.zeros_like(ew) if pw is None else pw
-    pol, mean, sd, codes = leaf_policies(
-        *args,
-        np.where(np.isfinite(store_q[act]), store_q[act], 0.0),
-        inp.store_pack[act],
-        ew[rows],
-        vw[rows],
-        pwv[rows],
-        mode=inp.mode,
-        basis=inp.backorder_basis,
-        reorder_point=np.where(np.isfinite(store_r[act]), store_r[act], 0.0),
-        max_wait=None if mw is None else mw[rows],
-    )
-    return rows, mean, sd, codes, pol
+    q = np.where(np.isfinite(store_q[act]), store_q[act], 0.0)
+    r = np.where(np.isfinite(store_r[act]), store_r[act], 0.0)
+    return _store_policies(inp, ew, vw, pw, mw, q, reorder_point=r)
 
 
 def _per_item(rows: np.ndarray, values: np.ndarray, n: int) -> np.ndarray:
@@ -1289,7 +1281,7 @@ def _assemble(inp, demand, r0, q0, state, ew, vw, rows, mean, sd, codes, pol, it
         out[act] = v
         return out
 
-    ordering, holding, back, fill = _warehouse_rows(inp, demand, state, r0, q0)
+    ordering, holding, back, fill = _warehouse_rows(inp, demand, state, q0)
     store_cost = _per_item(rows, np.asarray(pol.total_cost, dtype=float), n)
     sd0 = np.sqrt(np.maximum(demand.var, 0.0))
     cdf_r0 = np.zeros(n)
@@ -1774,7 +1766,7 @@ def optimise_two_level(
         state = warehouse_moments(sub_dem, r0c, q0s, tables=sub_tab)
         ew, vw = delay_moments(state, sub_dem)
         rows, _, _, _, pol = _optimise_stores(sub_inp, ew, vw, sub_q, state.wait_probability, mixture=False)
-        ordering, holding, back, _ = _warehouse_rows(sub_inp, sub_dem, state, r0c, q0s)
+        ordering, holding, back, _ = _warehouse_rows(sub_inp, sub_dem, state, q0s)
         return ordering + holding + back + _per_item(rows, np.asarray(pol.total_cost, dtype=float), r0c.size)
 
     tol = np.maximum(np.where(disc, SEARCH_TOL_UNITS, 0.0), SEARCH_TOL_SD * np.maximum(sd0, 1e-9))
@@ -2081,31 +2073,22 @@ def _tree_pass(inp: TreeInputs, r: np.ndarray, q: np.ndarray, *, optimise_leaves
         inp.target[leaf],
     )
     if optimise_leaves:
-        pol, lm, lsd, codes = leaf_policies(
-            *args,
-            qv[leaf],
-            inp.pack[leaf],
-            delay[leaf],
-            delay_var[leaf],
-            wait_p[leaf],
-            mode=inp.mode,
-            basis=inp.backorder_basis,
-            refine=refine,
-            max_wait=wait_cap[leaf],
-        )
+        q_leaf, options = qv[leaf], {"refine": refine}
     else:
-        pol, lm, lsd, codes = leaf_policies(
-            *args,
-            np.where(np.isfinite(qv[leaf]), qv[leaf], 0.0),
-            inp.pack[leaf],
-            delay[leaf],
-            delay_var[leaf],
-            wait_p[leaf],
-            mode=inp.mode,
-            basis=inp.backorder_basis,
-            max_wait=wait_cap[leaf],
-            reorder_point=np.where(np.isfinite(r_out[leaf]), r_out[leaf], 0.0),
-        )
+        q_leaf = np.where(np.isfinite(qv[leaf]), qv[leaf], 0.0)
+        options = {"reorder_point": np.where(np.isfinite(r_out[leaf]), r_out[leaf], 0.0)}
+    pol, lm, lsd, codes = leaf_policies(
+        *args,
+        q_leaf,
+        inp.pack[leaf],
+        delay[leaf],
+        delay_var[leaf],
+        wait_p[leaf],
+        mode=inp.mode,
+        basis=inp.backorder_basis,
+        max_wait=wait_cap[leaf],
+        **options,
+    )
     r_out[leaf] = pol.reorder_point
     q_out[leaf] = pol.order_quantity
     out["ltd_mean"][leaf] = lm

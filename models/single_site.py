@@ -1228,7 +1228,7 @@ def optimise_policy(annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost, *
         cands = (m1, m1 + pk[sel])
         best_c = np.full(sel.size, np.inf)
         for qc in cands:
-            Rc, itc, cvc, flc = _R_for_Q(qc, sel, D, mu, sd, A, h, bx, dist, t, mode, backorder_basis)
+            Rc, itc, cvc, flc = _R_for_Q(qc, sel, D, mu, sd, h, bx, dist, t, mode, backorder_basis)
             cc = _mode_objective(Rc, qc, sel, D, mu, sd, A, h, bx, dist, mode, backorder_basis, quantity_rule)
             better = cc < best_c
             best_c = np.where(better, cc, best_c)
@@ -1244,7 +1244,7 @@ def optimise_policy(annual_demand, ltd_mean, ltd_sd, order_cost, holding_cost, *
     if fixed.any():
         sel = np.flatnonzero(fixed)
         qf = np.where(discrete[sel], np.maximum(np.round(fq[sel]), 1.0), fq[sel])
-        Rf, itf, cvf, flf = _R_for_Q(qf, sel, D, mu, sd, A, h, bx, dist, t, mode, backorder_basis)
+        Rf, itf, cvf, flf = _R_for_Q(qf, sel, D, mu, sd, h, bx, dist, t, mode, backorder_basis)
         R[sel], Q[sel], it[sel], conv[sel] = Rf, qf, itf, cvf
         note[sel] |= np.where(flf, NOTE_NO_INTERIOR_OPTIMUM, 0)
 
@@ -1264,7 +1264,7 @@ def _by_kind(sel, dist):
             yield is_disc, loc, sel[loc]
 
 
-def _R_for_Q(Qc, sel, D, mu, sd, A, h, b, dist, t, mode, basis):
+def _R_for_Q(Qc, sel, D, mu, sd, h, b, dist, t, mode, basis):
     """Best R for given Q on the subset sel (mixed distributions). Returns (R, it, conv, flag)."""
     m = sel.size
     R = np.zeros(m)

@@ -29,6 +29,7 @@ import pandas as pd
 from models import demand as md
 from models import echelon as ech
 from models import single_site as ss
+from optimiser import plan as pl
 from optimiser.errors import CaseError
 
 __all__ = [
@@ -41,12 +42,7 @@ __all__ = [
     "POLICY_COLUMNS",
 ]
 
-POLICY_COLUMNS = [
-    "site", "item", "order_quantity", "reorder_point", "safety_stock", "lead_time_days",
-    "lead_time_demand_mean", "lead_time_demand_sd", "cycle_service", "fill_rate", "expected_on_hand",
-    "expected_backorders", "orders_per_year", "ordering_cost", "holding_cost", "backorder_cost", "total_cost",
-    "cycle_stock_cost", "safety_stock_cost", "z", "distribution", "expected_delay_days", "note",
-]  # fmt: skip
+POLICY_COLUMNS = pl.POLICY_COLUMNS  # the columns of policies.csv (one list, kept in optimiser.plan)
 
 SUMMARY_COLUMNS = [
     "root", "item", "stores", "warehouse_safety_stock", "stores_safety_stock", "warehouse_share",
@@ -244,8 +240,7 @@ def _blocks(itemsites: pd.DataFrame, forest: SiteForest) -> list[_Block]:
 
 def _col(table: pd.DataFrame, rows: np.ndarray, name: str, fill: float = 0.0) -> np.ndarray:
     values = table[name].to_numpy(dtype=float)
-    out = np.where(rows >= 0, values[np.maximum(rows, 0)], fill)
-    return out
+    return np.where(rows >= 0, values[np.maximum(rows, 0)], fill)
 
 
 def _settings_value(settings, name, default):
@@ -355,8 +350,6 @@ def _frame_two_level(
             "note": np.zeros(n, dtype=np.int64),
         }
     )
-    from optimiser import plan as pl
-
     item_of_store = np.nonzero(act)[0]
     delay = res.mean_delay[item_of_store]
     stores = pl._policy_frame(
@@ -422,8 +415,6 @@ def _summary_two_level(table, rows, res, seed, inp, root, seed_nominal) -> pd.Da
 
 def _single_site_frame(table: pd.DataFrame, settings) -> pd.DataFrame:
     """Sites with neither upstream nor downstream sites: the single-site plan."""
-    from optimiser import plan as pl
-
     return pl._plan_single_site(table.reset_index(drop=True), settings, [])
 
 
@@ -526,8 +517,6 @@ def _run(itemsites: pd.DataFrame, settings, given: np.ndarray | None, return_sum
         if given is None:
             frames.append(_single_site_frame(rest, settings))
         else:
-            from optimiser import plan as pl
-
             frames.append(
                 pl._evaluate_single_site(
                     rest.reset_index(drop=True), settings, given[~covered, 0], given[~covered, 1], []
@@ -566,7 +555,7 @@ def _seed_nominal_cost(inp: ech.TwoLevelInputs) -> np.ndarray:
     store = np.bincount(rows, weights=np.asarray(pol.total_cost, dtype=float), minlength=n)
     _, _, r0, q0, demand = ech.single_site_seed(inp)
     state = ech.warehouse_moments(ech._lattice_q0(demand, q0), r0, q0)
-    ordering, holding, back, _ = ech._warehouse_rows(inp, demand, state, r0, q0)
+    ordering, holding, back, _ = ech._warehouse_rows(inp, demand, state, q0)
     return store + ordering + holding + back
 
 
