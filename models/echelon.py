@@ -49,6 +49,7 @@ __all__ = [
     "warehouse_moments",
     "WarehouseState",
     "delay_moments",
+    "lone_unit_offset",
     "store_ltd_moments",
     "exact_one_for_one",
     "normal_loss_moments",
@@ -301,6 +302,8 @@ class WarehouseDemand:
     lattice step ``g`` of the demand (1 unless every flow comes in multiples of ``g``). ``rate`` (n,): demand
     rate ``lambda0`` into the warehouse. ``variance_rate`` (n,): ``v0``. ``tail`` (n,): dropped pmf mass.
     ``method`` (n,) int8: 0 normal moments, 1 convolution of order streams, 2 moment-fitted count pmf.
+    ``order_size`` (n,): mean size of the demand a unit arrives in (units weighted); ``own_rate`` (n,): the
+    warehouse's own customer demand rate (None: none); ``lone_offset`` (n,): :func:`lone_unit_offset`.
     """
 
     mean: np.ndarray
@@ -318,6 +321,8 @@ class WarehouseDemand:
     stream_const: np.ndarray | None = None
     own_var_rate: np.ndarray | None = None
     order_size: np.ndarray | None = None
+    own_rate: np.ndarray | None = None
+    lone_offset: np.ndarray | None = None
 
     def pmf_of(self, row: int) -> np.ndarray:
         """The pmf held for one discrete row (empty array for a normal row)."""
@@ -482,7 +487,59 @@ def warehouse_demand(
             1.0,
         ),
         lead_sd=lead_sd.copy(),
+        own_rate=own_mean.copy(),
+        lone_offset=lone_unit_offset(store_mean, store_q, store_count, active, rate, lead),
     )
+
+
+def lone_unit_offset(
+    store_mean: np.ndarray,
+    store_q: np.ndarray,
+    store_count: np.ndarray,
+    active: np.ndarray,
+    rate: np.ndarray,
+    window: np.ndarray,
+) -> np.ndarray:
+    """Units by which a lone unit demanded at the warehouse fares better than the mean unit of the stream.
+
+    Parameters
+    ----------
+    store_mean, store_q, store_count, active : ndarray, shape (n, m)
+        Stores' demand rates, order quantities, count flags and which stores send orders.
+    rate : ndarray, shape (n,)
+        All demand into the warehouse per time unit (stores' and own).
+    window : ndarray, shape (n,)
+        Warehouse lead time (the window of demand a unit's wait depends on).
+
+    Returns
+    -------
+    ndarray, shape (n,)
+        ``sum_i (d_i / lambda0) max((Q_i - c) / 2 - d_i L0, 0)``, ``c = 1`` for counts, else 0.
+
+    Examples
+    --------
+    >>> float(lone_unit_offset(np.array([[0.1]]), np.array([[21.0]]), np.array([[True]]),
+    ...                        np.array([[True]]), np.array([0.2]), np.array([10.0]))[0])
+    4.5
+
+    Notes
+    -----
+    A unit of a store order of ``Q_i`` has ``(Q_i - c) / 2`` units of its own order ahead of it on average
+    (and as many behind it); a unit of the warehouse's own customers has none. Against that, the store has
+    just ordered, so over the window before its order it has sent fewer units than its mean rate gives: about
+    ``d_i L0`` fewer while ``L0`` is shorter than its order cycle ``Q_i / d_i`` and ``(Q_i - c) / 2`` fewer
+    over many cycles (the renewal function of an Erlang stream started at an order). The difference, capped
+    at 0, is how much further along a lone own-customer unit is than the store's units. From the mechanics of
+    the METRIC-type model, checked against the project's simulator (tests/test_network.py).
+
+    References
+    ----------
+    Cox, D. R. (1962). Renewal Theory. Methuen (renewal function from an epoch).
+    """
+    c = np.where(store_count, 1.0, 0.0)
+    gap = np.maximum((store_q - c) / 2.0 - store_mean * np.asarray(window, dtype=float)[:, None], 0.0)
+    num = np.where(active, store_mean * gap, 0.0).sum(axis=1)
+    return np.where(rate > 0, num / np.where(rate > 0, rate, 1.0), 0.0)
 
 
 def _convolve_streams(win_mean, win_var, q, active, own_mean, own_var, width):
@@ -558,7 +615,11 @@ def normal_loss_moments(z: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarr
 
 @dataclass(frozen=True)
 class WarehouseState:
-    """Warehouse steady state for given ``(R0, Q0)``: expected on hand, backorders and their second moment."""
+    """Warehouse steady state for given ``(R0, Q0)``: expected on hand, backorders and their second moment.
+
+    ``own_stockout_probability``: probability that a unit demanded by the warehouse's own customers finds no
+    stock; ``own_backorders``: the part of ``expected_backorders`` owed to its own customers (0 without them).
+    """
 
     expected_on_hand: np.ndarray
     expected_backorders: np.ndarray
@@ -570,6 +631,8 @@ class WarehouseState:
     negative_depth: np.ndarray
     negative_square: np.ndarray
     ltd_var: np.ndarray
+    own_stockout_probability: np.ndarray
+    own_backorders: np.ndarray
 
 
 class _DiscreteLoss:
@@ -709,6 +772,12 @@ def warehouse_moments(
     Normal: ``E[B0] = sigma**2 (H2(z_R) - H2(z_RQ)) / (2 Q0)``, ``E[B0^2] = sigma**3 (H3(z_R) - H3(z_RQ)) / (3
     Q0)``.
 
+    The warehouse's own customers (``demand.own_rate``), served first come first served with the store
+    orders: a unit of theirs waits when ``X >= y`` (counts) and finds no stock with probability
+    ``mean_y P(X >= y)``; their backorders are their share of the demand times the backorders the stream
+    would owe if each unit fared as a lone unit (:func:`lone_unit_offset`, ``_own_unit_backorders_discrete``
+    and its normal integral), capped at ``E[B0]``.
+
     References
     ----------
     Hadley, G. & Whitin, T. M. (1963). Analysis of Inventory Systems. Prentice-Hall.
@@ -731,6 +800,12 @@ def warehouse_moments(
         np.where(demand.rate > 0, demand.order_size, 1.0) if demand.order_size is not None else np.ones(n)
     )
     ltd_var = np.maximum(np.asarray(demand.var, dtype=float), 0.0).copy()
+    own_rate = np.zeros(n) if demand.own_rate is None else np.asarray(demand.own_rate, dtype=float)
+    own_share = np.where(demand.rate > 0, own_rate / np.where(demand.rate > 0, demand.rate, 1.0), 0.0)
+    # how much further along a lone own-customer unit is than the mean unit of the stream
+    ahead = np.zeros(n) if demand.lone_offset is None else np.asarray(demand.lone_offset, dtype=float)
+    own_so = np.zeros(n)
+    own_unit = np.zeros(n)
     eip = np.where(demand.discrete, r0 + (q0 + demand.step) / 2.0, r0 + q0 / 2.0)
     d = demand.discrete
     if np.any(d):
@@ -745,6 +820,11 @@ def warehouse_moments(
             stockout[rows] = sg
             shift = np.maximum(np.rint(order_size[rows]), 1.0)
             wait[rows] = loss.lattice_sums(r0[rows] - shift, q0[rows])[2]
+            own_so[rows] = loss.lattice_sums(r0[rows] - 1.0, q0[rows])[2]
+            if np.any(own_share[rows] > 0):
+                own_unit[rows] = _own_unit_backorders_discrete(
+                    loss, r0[rows], q0[rows], ahead[rows], demand.mean[rows]
+                )
     c = ~d
     if np.any(c):
         mu = demand.mean[c]
@@ -764,6 +844,21 @@ def warehouse_moments(
         wa = normal_loss_moments(za - sh / sd)[0]
         wb = normal_loss_moments(zb - sh / sd)[0]
         wait[c] = np.where(small, special.ndtr(-(za - sh / sd)), sd * (wa - wb) / qs)
+        own_so[c] = stockout[c]
+        # own customers (see _own_unit_backorders_discrete): positions y > 0 at y + ahead, y <= 0 at y - ahead
+        m_c = ahead[c]
+        lo_p = np.maximum(r0[c], 0.0)
+        hi_p = np.maximum(r0[c] + qq, lo_p)
+        pos_int = sd**2 * (
+            normal_loss_moments((lo_p + m_c - mu) / sd)[1] - normal_loss_moments((hi_p + m_c - mu) / sd)[1]
+        ) / 2.0
+        lo_n = np.minimum(r0[c], 0.0)
+        hi_n = np.minimum(r0[c] + qq, 0.0)
+        neg_int = (hi_n - lo_n) * (mu + m_c) - (hi_n**2 - lo_n**2) / 2.0
+        at_r = np.where(
+            r0[c] > 0, sd * normal_loss_moments((r0[c] + m_c - mu) / sd)[0], mu + m_c - r0[c]
+        )
+        own_unit[c] = np.where(small, at_r, (pos_int + neg_int) / qs)
         # inventory positions below zero: share of (R0, R0 + Q0] and mean of |y| there (times the share)
         lo_, hi_ = r0[c], np.minimum(r0[c] + qq, 0.0)
         width_ = np.maximum(hi_ - lo_, 0.0)
@@ -792,7 +887,36 @@ def warehouse_moments(
         stockout_probability=np.clip(stockout, 0.0, 1.0),
         wait_probability=np.clip(wait, 0.0, 1.0),
         max_wait=max_wait,
+        own_stockout_probability=np.clip(own_so, 0.0, 1.0),
+        own_backorders=np.clip(own_share * own_unit, 0.0, eb),
     )
+
+
+def _own_unit_backorders_discrete(loss, r0, q0, ahead, mu0):
+    """Backorders if every unit were served like a lone unit of the warehouse's own customers (step 1).
+
+    ``ahead`` is :func:`lone_unit_offset`: how many units of its own store order a store unit has before it
+    (and as many behind it), net of the store's lighter past orders. At an inventory position ``y > 0`` the
+    units before it count against a store unit, so a lone unit fares as a store unit would at ``y + ahead``:
+    ``E(X - y - ahead)^+``. At ``y <= 0`` a unit waits for a warehouse order not yet placed, which the units
+    behind a store unit help to trigger; a lone unit fares as a store unit would at ``y - ahead``:
+    ``mu0 - y + ahead``. Averaged over ``y = R0 + 1 .. R0 + Q0`` (``ahead`` interpolated between whole
+    units); the caller multiplies by the own customers' share of the demand.
+    """
+    r0 = np.rint(r0)
+    q0 = np.rint(q0)
+    lo = np.maximum(r0, 0.0)  # positive positions lo + 1 .. r0 + q0
+    kp = np.maximum(r0 + q0 - lo, 0.0)
+    kn = np.clip(-r0, 0.0, q0)  # positions r0 + 1 .. r0 + kn <= 0
+    sum_y = kn * r0 + kn * (kn + 1.0) / 2.0
+    base = np.floor(ahead)
+    frac = ahead - base
+    out = np.zeros(r0.size)
+    for shift, weight in ((base, 1.0 - frac), (base + 1.0, frac)):
+        pos = np.where(kp > 0, kp * loss.lattice_sums(lo + shift, np.maximum(kp, 1.0))[0], 0.0)
+        neg = kn * (mu0 + shift) - sum_y
+        out += weight * (pos + neg)
+    return out / np.maximum(q0, 1.0)
 
 
 def arrival_variance(demand: WarehouseDemand, window: np.ndarray) -> np.ndarray:
@@ -877,6 +1001,11 @@ def delay_moments(state: WarehouseState, demand: WarehouseDemand) -> tuple[np.nd
 
     ``Var(W) = E[W^2] - E[W]^2`` (clipped at 0).
 
+    With own customers at the warehouse (``demand.own_rate`` > 0) the store orders' wait is
+    ``E[W] = (E[B0] - E[B_own]) / (lambda0 - own rate)`` (Little's law on the store units alone; ``E[B_own]``
+    from :func:`warehouse_moments`), and ``W`` is the all-unit wait scaled to that mean (variance times the
+    squared ratio of the means).
+
     References
     ----------
     Sherbrooke, C. C. (1968). METRIC: a multi-echelon technique for recoverable item control. Operations
@@ -903,6 +1032,18 @@ def delay_moments(state: WarehouseState, demand: WarehouseDemand) -> tuple[np.nd
     ew2 = (p2 - pos_share * arrival_variance(demand, w_pos)) / safe**2
     ew2 = ew2 + neg_sq / safe**2 + share * demand.lead_sd**2
     vw = np.where(pos, np.maximum(ew2 - ew * ew, 0.0), 0.0)
+    # with own customers the stores' orders owe E[B0] - E[B_own] at rate lambda0 - own rate; the wait of a
+    # store unit is taken as the all-unit wait scaled to that mean
+    own = np.zeros_like(lam) if demand.own_rate is None else np.asarray(demand.own_rate, dtype=float)
+    lam_st = lam - own
+    has_own = pos & (own > 0)
+    if np.any(has_own):
+        ew_st = np.where(
+            lam_st > 0, np.maximum(eb - state.own_backorders, 0.0) / np.where(lam_st > 0, lam_st, 1.0), 0.0
+        )
+        scale = np.where(ew > 0, ew_st / np.where(ew > 0, ew, 1.0), 1.0)
+        ew = np.where(has_own, ew_st, ew)
+        vw = np.where(has_own, vw * scale**2, vw)
     return ew, vw
 
 
@@ -1207,13 +1348,13 @@ def _warehouse_rows(inp: TwoLevelInputs, demand: WarehouseDemand, state: Warehou
     """Warehouse cost and service given its steady state."""
     lam0 = demand.rate
     own = inp.warehouse_own_mean
-    own_share = np.where(lam0 > 0, own / np.where(lam0 > 0, lam0, 1.0), 0.0)
     through_year = lam0 * inp.days_per_year
     ordering = np.where(q0 > 0, inp.warehouse_order_cost * through_year / np.maximum(q0, 1e-12), 0.0)
     holding = inp.warehouse_holding_cost * state.expected_on_hand
-    fill = 1.0 - state.stockout_probability
+    # with own customers: their fill rate and their share of the backorders (FCFS, as the simulator serves)
+    fill = 1.0 - np.where(own > 0, state.own_stockout_probability, state.stockout_probability)
     if inp.backorder_basis == "per_unit_year":
-        back = inp.warehouse_backorder_cost * own_share * state.expected_backorders
+        back = inp.warehouse_backorder_cost * state.own_backorders
     else:
         back = inp.warehouse_backorder_cost * own * inp.days_per_year * (1.0 - fill)
     return ordering, holding, back, fill
@@ -1885,7 +2026,7 @@ def _tree_shape(parent: np.ndarray, active: np.ndarray):
 
 
 def _fitted_demand(
-    mean, var, rate, lead_sd, short, long_, const, own_var, count, order_size
+    mean, var, rate, lead_sd, short, long_, const, own_var, count, order_size, own_rate=None, lone_offset=None
 ) -> WarehouseDemand:
     """A site's lead-time demand by moments: negative binomial / Poisson pmf for counts, else normal."""
     n = mean.size
@@ -1917,6 +2058,8 @@ def _fitted_demand(
         stream_const=const,
         own_var_rate=own_var,
         order_size=order_size,
+        own_rate=own_rate,
+        lone_offset=lone_offset,
     )
 
 
@@ -2013,6 +2156,8 @@ def _tree_pass(inp: TreeInputs, r: np.ndarray, q: np.ndarray, *, optimise_leaves
             np.where(act[:, s], inp.sd[:, s] ** 2, 0.0),
             inp.count[:, s],
             osize,
+            np.where(act[:, s], inp.mean[:, s], 0.0),
+            lone_unit_offset(rate[:, cs], qcs, inp.count[:, cs], on, rate[:, s], window),
         )
         rs = np.where(rows, r[:, s], 0.0)
         qs = np.where(rows & np.isfinite(qv[:, s]), qv[:, s], 1.0)
@@ -2024,12 +2169,11 @@ def _tree_pass(inp: TreeInputs, r: np.ndarray, q: np.ndarray, *, optimise_leaves
             wait_p[:, c] = np.where(act[:, c], state.wait_probability, 0.0)
             wait_cap[:, c] = state.max_wait
         sd0 = np.sqrt(np.maximum(var, 0.0))
-        own_share = np.where(rate[:, s] > 0, inp.mean[:, s] / np.where(rate[:, s] > 0, rate[:, s], 1.0), 0.0)
         ordering = inp.order_cost[:, s] * rate[:, s] * days / qs
         holding = inp.holding_cost[:, s] * state.expected_on_hand
-        fill = 1.0 - state.stockout_probability
+        fill = 1.0 - np.where(inp.mean[:, s] > 0, state.own_stockout_probability, state.stockout_probability)
         if inp.backorder_basis == "per_unit_year":
-            back = inp.backorder_cost[:, s] * own_share * state.expected_backorders
+            back = inp.backorder_cost[:, s] * state.own_backorders
         else:
             back = inp.backorder_cost[:, s] * inp.mean[:, s] * days * (1.0 - fill)
         cycle = inp.holding_cost[:, s] * qs / 2.0
