@@ -886,8 +886,15 @@ def run_simulation(
             continue
         planned = planned_cols[name]
         out[f"planned_{name}"] = planned
-        lo = out[name].to_numpy() - out[f"{name}_ci"].to_numpy()
-        hi = out[name].to_numpy() + out[f"{name}_ci"].to_numpy()
+        sim_mean, sim_ci = out[name].to_numpy(), out[f"{name}_ci"].to_numpy()
+        if name == "fill_rate":
+            # A plan's fill rate at a site with customers of its own is its customers' fill rate; the
+            # simulated fill_rate there also counts the orders of the sites it supplies.
+            own = table["daily_mean"].to_numpy(float) > 0
+            sim_mean = np.where(own, out["customer_fill_rate"].to_numpy(), sim_mean)
+            sim_ci = np.where(own, out["customer_fill_rate_ci"].to_numpy(), sim_ci)
+        lo = sim_mean - sim_ci
+        hi = sim_mean + sim_ci
         outside = (planned < lo - PLANNED_SLACK) | (planned > hi + PLANNED_SLACK)
         off = np.isfinite(planned) & np.isfinite(lo) & outside
         for r in np.nonzero(off)[0]:

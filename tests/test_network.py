@@ -411,6 +411,10 @@ def own_customer_errors(seed, items, stores, speed, basis, share, compound, year
                 np.nan,
             ),
             "delay": np.where(delay_sim >= 0.1, per["w_model"] / per["w_sim"] - 1.0, np.nan),
+            # rqnet simulate flags a warehouse's planned fill rate against its customers' simulated fill rate
+            # (the all-units fill rate also counts store orders): flagged exactly when outside that interval
+            "wh_fill_flag_ok": (wh["outside_interval"].str.contains("fill_rate"))
+            == ((wh["fill_rate"] - wh["customer_fill_rate"]).abs() > wh["customer_fill_rate_ci"]),
         }
     )
 
@@ -443,6 +447,7 @@ def _check_own_customers(errors: pd.DataFrame, delay_limit: float) -> None:
     assert errors["wh_fill"].max() <= OWN_FILL_LIMIT
     assert not (errors["own_backorders"].abs() > OWN_BACKORDER_LIMIT).any()
     assert not (errors["delay"].abs() > delay_limit).any()
+    assert errors["wh_fill_flag_ok"].all()
 
 
 @pytest.mark.parametrize(
