@@ -14,6 +14,16 @@ Constraints (each optional):
   times ``t = 1, 1 + lcm(k), ...`` no other item is due), of mean value ``sum_{k_i = 1} D_i T u_i``;
 * maximum interval per item (shelf life): ``k_i T <= L_i``.
 
+Slow movers
+-----------
+A review orders only if demand came since the last one. With a demand model (``make_family(order_model=..)``)
+the line cost of (item, interval ``tau``) is ``s_i p_i(tau) / tau``, ``p_i = 1 - exp(-c_i tau)``
+(:func:`models.joint.order_probability`): a constant per candidate, so the objective stays linear and exact.
+The family's shared cost is paid only in base cycles in which some due item orders, a chance ``1 - prod (1 -
+p_i)`` that is not linear in the multiples; the objective keeps ``S / T`` (an upper bound) and the solution
+reports the expected shared cost (:func:`expected_shared_rate`). ``p`` is concave with ``p(0) = 0``, so
+``s p(tau) / tau`` decreases and ``s p(tau)`` increases in ``tau``: the tolerance proof below holds unchanged.
+
 Candidate set and its tolerance
 -------------------------------
 Candidates are a geometric grid ``T_j = T_lo * rho^j`` over a range ``[T_lo, T_hi]`` that provably contains
@@ -241,6 +251,7 @@ class Family:
     backorder_basis: str = "per_unit"
     mode: str = "cost"
     target: np.ndarray | None = None
+    no_demand_rate: np.ndarray | None = None  # c_i: P(review orders) = 1 - exp(-c_i tau); None = always
 
 
 def make_family(
@@ -263,6 +274,8 @@ def make_family(
     backorder_basis: str = "per_unit",
     mode: str = "cost",
     target=None,
+    order_model=None,
+    no_demand_rate=None,
 ) -> Family:
     """Validate and broadcast the data of one family.
 
@@ -278,6 +291,13 @@ def make_family(
         Per-order limits.
     backorder_basis, mode, target
         See :func:`periodic_review_cost`.
+    order_model : array_like of int, optional
+        Demand model per item for the chance that a review orders (``models.demand`` codes: ``NORMAL`` =
+        every review orders, ``POISSON``, ``NEGBIN``; :func:`models.joint.order_probability`). None: every
+        review orders (the classical model). With it an item's line cost per year is ``s_i p_i(tau) / tau``.
+    no_demand_rate : array_like, optional
+        Instead of ``order_model``: the rate ``c_i >= 0`` per year (``inf`` = every review orders) with
+        ``P(no demand in tau) = exp(-c_i tau)`` given directly (e.g. the order rate of the sites below).
 
     Returns
     -------
@@ -332,6 +352,11 @@ def make_family(
         mode=mode,
         target=None if target is None else np.broadcast_to(np.asarray(target, dtype=float), (n,)).copy(),
     )
+    if no_demand_rate is not None:
+        fam = replace(fam, no_demand_rate=arr("no_demand_rate", no_demand_rate, 0.0))
+    elif order_model is not None:
+        codes = np.broadcast_to(np.asarray(order_model), (n,))
+        fam = replace(fam, no_demand_rate=joint.no_demand_rate(fam.annual_demand, fam.demand_var, codes))
     for name in ("capacity_volume", "capacity_weight"):
         v = getattr(fam, name)
         if math.isnan(v) or v <= 0:
@@ -384,6 +409,15 @@ class FamilySolution:
     tolerance_proven : bool
         True when the grid tolerance claim applies to this family's constraints and mode.
     seconds : float
+    order_probability : numpy.ndarray
+        ``p_i(k_i T)``, the chance that a review of item ``i`` orders (:func:`order_probabilities`).
+    joint_orders_rate : float
+        Expected joint orders per year (:func:`expected_shared_rate`).
+    expected_major_cost_rate : float
+        ``S x joint_orders_rate``: the expected shared cost a year (``<= major_cost_rate``, which the model
+        charges as an upper bound).
+    expected_total_cost : float
+        ``expected_major_cost_rate + sum(item_cost)``.
     """
 
     status: str
@@ -407,6 +441,10 @@ class FamilySolution:
     tolerance_proven: bool
     seconds: float
     extra: dict = field(default_factory=dict)
+    order_probability: np.ndarray | None = None
+    joint_orders_rate: float = math.nan
+    expected_major_cost_rate: float = math.nan
+    expected_total_cost: float = math.nan
 
 
 # --------------------------------------------------------------------------- helpers
@@ -426,11 +464,73 @@ def _ss_cost_at(fam: Family, tau: np.ndarray, item: np.ndarray) -> np.ndarray:
     return cost
 
 
+def _order_prob(fam: Family, tau: np.ndarray, rate: np.ndarray | None) -> np.ndarray | float:
+    """Probability that a review at interval ``tau`` orders (1.0 when the family has no order model)."""
+    if rate is None:
+        return 1.0
+    with np.errstate(invalid="ignore"):
+        return np.where(np.isinf(rate), 1.0, -np.expm1(-np.where(np.isinf(rate), 0.0, rate) * tau))
+
+
+def order_probabilities(fam: Family, T: float, k: np.ndarray) -> np.ndarray:
+    """Probability ``p_i(k_i T)`` that item ``i`` orders at a review (all ones without an order model).
+
+    Parameters
+    ----------
+    fam : Family
+    T : float
+        Base cycle (years).
+    k : numpy.ndarray of int
+        Multiples.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``1 - exp(-c_i k_i T)`` (:func:`models.joint.order_probability`).
+
+    Examples
+    --------
+    >>> f = make_family(10.0, [1.0], [1.0], [2.0], demand_var=2.0, order_model=1)
+    >>> round(float(order_probabilities(f, 0.5, np.array([1]))[0]), 6)
+    0.632121
+    """
+    tau = float(T) * np.asarray(k, dtype=float)
+    p = np.asarray(_order_prob(fam, tau, fam.no_demand_rate), dtype=float)
+    return np.broadcast_to(p, tau.shape).copy()
+
+
+def expected_shared_rate(fam: Family, T: float, k: np.ndarray) -> float:
+    """Expected joint orders per year of a cyclic policy: base cycles in which some due item orders, / T.
+
+    Parameters
+    ----------
+    fam : Family
+    T : float
+        Base cycle (years).
+    k : numpy.ndarray of int
+        Multiples.
+
+    Returns
+    -------
+    float
+        ``share / T`` with the share of :func:`models.joint.expected_joint_share`; at most ``1 / T`` (the
+        model charges ``S / T``, an upper bound on the expected shared cost ``S x`` this rate).
+
+    Examples
+    --------
+    >>> f = make_family(10.0, [1.0, 1.0], 1.0, 2.0, demand_var=2.0, order_model=1)
+    >>> round(expected_shared_rate(f, 0.5, np.array([1, 1])), 6)  # (1 - exp(-2)) / 0.5
+    1.729329
+    """
+    return joint.expected_joint_share(k, order_probabilities(fam, T, k)) / float(T)
+
+
 def _deterministic_costs(fam: Family, T: np.ndarray, ks: np.ndarray) -> np.ndarray:
     """Minor order cost + cycle stock of (candidate, item, multiple), inf beyond the shelf life."""
     tau = T[:, None, None] * ks[None, None, :]
     H = (fam.holding_cost * fam.annual_demand)[None, :, None]
-    det = fam.minor_cost[None, :, None] / tau + 0.5 * tau * H
+    rate = None if fam.no_demand_rate is None else fam.no_demand_rate[None, :, None]
+    det = fam.minor_cost[None, :, None] * _order_prob(fam, tau, rate) / tau + 0.5 * tau * H
     return np.where(tau <= fam.max_interval[None, :, None] * (1 + 1e-12), det, np.inf)
 
 
@@ -465,7 +565,8 @@ def _item_costs(fam: Family, T: np.ndarray, ks: np.ndarray, det: np.ndarray | No
 def _policy_cost(fam: Family, T: float, k: np.ndarray):
     """Per-item cost, z, sigma of one policy."""
     tau = T * k
-    det = fam.minor_cost / tau + 0.5 * tau * fam.holding_cost * fam.annual_demand
+    det = (fam.minor_cost * _order_prob(fam, tau, fam.no_demand_rate) / tau
+           + 0.5 * tau * fam.holding_cost * fam.annual_demand)
     ss, z, sig = periodic_review_cost(
         tau, fam.annual_demand, fam.demand_var, fam.lead_time, fam.lead_time_sd, fam.holding_cost,
         fam.backorder_cost, backorder_basis=fam.backorder_basis, mode=fam.mode, target=fam.target,
@@ -947,7 +1048,8 @@ def solve_family(
     ``min sum_c (S / T_c) y_c + sum_{c,i,k} cost_cik x_cik`` subject to ``sum_c y_c = 1``,
     ``sum_k x_cik = y_c``, ``sum_{i,k} D_i v_i k T_c x_cik <= C_v y_c`` (and weight),
     ``sum_i D_i u_i T_c x_ci1 >= M y_c``, ``x_cik = 0`` when ``k T_c > L_i``;
-    ``cost_cik = s_i / (k T_c) + h_i D_i k T_c / 2 + safety/backorder cost(k T_c)``.
+    ``cost_cik = s_i p_i(k T_c) / (k T_c) + h_i D_i k T_c / 2 + safety/backorder cost(k T_c)`` (``p = 1``
+    without an order model).
 
     References
     ----------
@@ -987,12 +1089,17 @@ def solve_family(
             return rand_fallback("fallback", "solver answer failed the independent check ("
                                  + "; ".join(viol) + "); RAND heuristic used, not proven optimal")
         oupt = fam.annual_demand * (T * k + fam.lead_time) + z * sig
+        p_ord = order_probabilities(fam, T, k)
+        share = joint.expected_joint_share(k, p_ord)
+        jrate = share / T
         return FamilySolution(
             status=status, message=message, cycle=float(T), multiples=k, order_up_to=oupt, safety_factor=z,
             item_cost=c, major_cost_rate=S / T, total_cost=S / T + float(c.sum()), candidate_cost=cand_cost,
             bound=bound, gap=gap, binding=bind, feasible=feas, candidates=cands, candidates_kept=kept,
             variables=nvar, grid_ratio=grid_ratio, tolerance_proven=tol_ok,
-            seconds=time.perf_counter() - t_start, extra=extra or {},
+            seconds=time.perf_counter() - t_start, extra=extra or {}, order_probability=p_ord,
+            joint_orders_rate=jrate, expected_major_cost_rate=S * share / T,
+            expected_total_cost=S * share / T + float(c.sum()),
         )
 
     def rand_fallback(status, message):
@@ -1030,7 +1137,10 @@ def solve_family(
         c, _, _ = _policy_cost(fam, float(probe[j]), k_p[j])
         if check_policy(fam, float(probe[j]), k_p[j])[0]:
             ub = min(ub, S / probe[j] + float(c.sum()))
-    eoq = float(np.sum(np.sqrt(2.0 * s * H)))
+    # each item costs at least its EOQ cost when every review orders; a slow mover's line cost s p(tau)/tau
+    # can be lower, so it contributes only 0 (>= 0) to this bound
+    always = np.ones(n, dtype=bool) if fam.no_demand_rate is None else np.isinf(fam.no_demand_rate)
+    eoq = float(np.sum(np.sqrt(2.0 * s * H)[always]))
     r_lo = S / (ub - eoq) if ub > eoq else t_lo
     r_lo = max(r_lo * (1 - 1e-9), t_lo)
     r_hi = min(2.0 * ub / float(H.sum()) * (1 + 1e-9), t_hi)

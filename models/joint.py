@@ -545,3 +545,145 @@ def silver(major_cost: float, minor_cost, holding_demand) -> JointPolicy:
     k = k.astype(np.int64)
     T = float(optimal_cycle(k, S, s, H))
     return JointPolicy(T, k, float(joint_cost(T, k, S, s, H)), "silver", 1, True)
+
+
+# ----------------------------------------------------------------------- slow movers: reviews without orders
+#: base cycles averaged over when the common period lcm(k) of a family's multiples is longer
+JOINT_CYCLES_LIMIT = 100_000
+
+
+def no_demand_rate(annual_demand, demand_var, model) -> np.ndarray:
+    """Rate ``c`` (per year) with ``P(no demand in an interval tau) = exp(-c tau)``.
+
+    Parameters
+    ----------
+    annual_demand : array_like, shape (n,)
+        Mean demand per year ``lambda >= 0``.
+    demand_var : array_like, shape (n,)
+        Variance of demand per year ``sigma^2 >= 0`` (the variance over ``tau`` is ``sigma^2 tau``).
+    model : array_like of int, shape (n,)
+        ``models.demand`` codes: ``NORMAL`` (0; every review orders, ``c = inf``), ``POISSON`` (1),
+        ``NEGBIN`` (2; where ``sigma^2 <= lambda`` it falls back to Poisson).
+
+    Returns
+    -------
+    numpy.ndarray
+        ``c``: ``lambda`` (Poisson); ``lambda^2 ln(sigma^2 / lambda) / (sigma^2 - lambda)`` (negative
+        binomial); ``inf`` (normal); ``0`` where ``lambda = 0``.
+
+    Notes
+    -----
+    Negative binomial counts over ``tau`` with mean ``m = lambda tau`` and variance ``v = sigma^2 tau`` have
+    ``r = m^2 / (v - m)``, ``p = m / v`` and ``P(0) = p^r = exp(-tau lambda^2 ln(sigma^2/lambda) / (sigma^2 -
+    lambda))`` -- exponential in ``tau`` as for Poisson, because compound Poisson demand with logarithmic
+    sizes (the simulator's model) is negative binomial over every interval.
+
+    References
+    ----------
+    Johnson, N. L., Kemp, A. W., Kotz, S. (2005). Univariate Discrete Distributions, 3rd ed., Wiley, ch. 5
+    and 7.
+
+    Examples
+    --------
+    >>> no_demand_rate([2.0, 2.0, 2.0], [2.0, 4.0, 2.0], [1, 2, 0]).round(6).tolist()
+    [2.0, 1.386294, inf]
+    """
+    lam = np.asarray(annual_demand, dtype=float)
+    var = np.asarray(demand_var, dtype=float)
+    code = np.asarray(model)
+    lam, var, code = np.broadcast_arrays(lam, var, code)
+    if np.any(~(lam >= 0)) or np.any(~(var >= 0)):
+        raise ValueError("annual_demand and demand_var must be >= 0 (and not NaN)")
+    if np.any((code < 0) | (code > 2)):
+        raise ValueError(f"model: codes are 0 (normal), 1 (Poisson), 2 (negative binomial); got {code}")
+    over = (code == 2) & (var > lam) & (lam > 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        nb = np.where(over, lam * lam * np.log(np.where(over, var / np.where(lam > 0, lam, 1.0), 2.0))
+                      / np.where(over, var - lam, 1.0), 0.0)
+    c = np.where(over, nb, lam)
+    return np.where((code == 0) & (lam > 0), np.inf, c)
+
+
+def order_probability(interval, annual_demand, demand_var, model) -> np.ndarray:
+    """Probability that a periodic review orders: some demand arrived in the ``interval`` since the last one.
+
+    Parameters
+    ----------
+    interval : array_like
+        Review interval ``tau = k_i T`` (years), broadcast against the item arrays.
+    annual_demand, demand_var, model : array_like, shape (n,)
+        As in :func:`no_demand_rate`.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``p_i(tau) = 1 - exp(-c_i tau)`` (1 for ``NORMAL``); the expected line cost per year of an
+        order-up-to item is ``s_i p_i(tau) / tau``.
+
+    Notes
+    -----
+    Under an order-up-to policy a review orders exactly when the position fell below the level, i.e. when
+    there was demand since the last review. ``p / tau`` decreases in ``tau`` and ``p`` increases (``p`` is
+    concave with ``p(0) = 0``), so the line cost keeps the monotonicity the grid tolerance of
+    ``models.grouping_milp`` relies on.
+
+    References
+    ----------
+    Johnson, N. L., Kemp, A. W., Kotz, S. (2005). Univariate Discrete Distributions, 3rd ed., Wiley.
+
+    Examples
+    --------
+    >>> round(float(order_probability(0.5, 2.0, 2.0, 1)), 6)  # 1 - exp(-1)
+    0.632121
+    """
+    c = no_demand_rate(annual_demand, demand_var, model)
+    tau = np.asarray(interval, dtype=float)
+    with np.errstate(invalid="ignore"):
+        x = c * tau
+    return np.where(np.isinf(c), 1.0, -np.expm1(-np.where(np.isinf(c), 0.0, x)))
+
+
+def expected_joint_share(multiples, probability, limit: int = JOINT_CYCLES_LIMIT) -> float:
+    """Expected share of base cycles in which a family orders (at least one due item orders).
+
+    Parameters
+    ----------
+    multiples : array_like of int, shape (n,)
+        ``k_i >= 1``; item ``i`` is due at base cycles ``m`` with ``k_i | m``.
+    probability : array_like, shape (n,)
+        ``p_i``: probability that item ``i`` orders when due (:func:`order_probability` at ``k_i T``).
+    limit : int
+        Base cycles averaged when the common period ``lcm(k)`` is longer.
+
+    Returns
+    -------
+    float
+        ``(1/L) sum_{m=1..L} [1 - prod_{i: k_i | m} (1 - p_i)]`` with ``L = lcm(k)`` (capped at ``limit``).
+        Expected joint orders per year = share / T.
+
+    Notes
+    -----
+    Items order independently (independent demand); the schedule repeats every ``lcm(k)`` base cycles.
+    With ``p = 1`` this is the share of base cycles in which some item is due (1 when some ``k_i = 1``).
+
+    Examples
+    --------
+    >>> expected_joint_share([1, 2], [0.5, 0.5])  # (0.5 + 0.75) / 2
+    0.625
+    """
+    k = np.asarray(multiples, dtype=np.int64).ravel()
+    p = np.broadcast_to(np.asarray(probability, dtype=float), k.shape)
+    if k.size == 0:
+        return 0.0
+    if np.any(k < 1):
+        raise ValueError(f"multiples must be >= 1, got {k.tolist()}")
+    if np.any(~((p >= 0) & (p <= 1))):
+        raise ValueError("probability must lie in [0, 1]")
+    kv, inv = np.unique(k, return_inverse=True)
+    q = np.ones(kv.size)
+    np.multiply.at(q, inv, 1.0 - p)  # probability that no item of multiple kv orders when due
+    period = int(np.lcm.reduce(kv))
+    span = min(period if period > 0 else int(limit), int(limit))
+    m = np.arange(1, span + 1)
+    none = np.prod(np.where(m[:, None] % kv[None, :] == 0, q[None, :], 1.0), axis=1)
+    return float(np.mean(1.0 - none))

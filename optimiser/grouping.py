@@ -29,20 +29,24 @@ import numpy as np
 import pandas as pd
 
 from models import grouping_milp as gm
+from models import joint
 from models import single_site as ss
-from models.demand import NORMAL, lead_time_demand
+from models.demand import NEGBIN, NORMAL, POISSON, lead_time_demand
 from optimiser.case import Case
 from optimiser.itemsites import build_itemsites, through_demand
+from optimiser.simulate import POISSON_DISPERSION_TOL
 
 GROUP_COLUMNS = [
     "family", "site", "supplier", "item", "base_cycle_days", "cycle_multiple", "order_interval_days",
     "order_up_to", "safety_factor", "annual_cost", "independent_cost", "status", "demand_basis",
-    "window_demand_sd", "fill_rate", "expected_on_hand",
+    "window_demand_sd", "fill_rate", "expected_on_hand", "order_probability", "orders_per_year",
+    "ordering_cost",
 ]
 FAMILY_COLUMNS = [
     "family", "kind", "site", "supplier", "items", "status", "shared_run", "base_cycle_days",
     "independent_cost", "grouped_cost", "savings", "savings_pct", "binding", "gap", "candidates",
-    "candidates_kept", "seconds", "tolerance_proven", "message", "demand_basis",
+    "candidates_kept", "seconds", "tolerance_proven", "message", "demand_basis", "orders_per_year",
+    "shared_cost", "line_cost", "ordering_cost",
 ]
 
 
@@ -231,6 +235,60 @@ def _set_predictions(out: pd.DataFrame, active: np.ndarray, fam: gm.Family, cycl
     out.loc[active, "window_demand_sd"] = sigma
     out.loc[active, "fill_rate"] = np.clip(fill, 0.0, 1.0)
     out.loc[active, "expected_on_hand"] = sigma * normal_loss(-z) + per_cycle / 2.0
+
+
+def _no_demand_rates(table: pd.DataFrame, pos: np.ndarray, batched: np.ndarray, dpy: float) -> np.ndarray:
+    """Rate ``c`` per year with P(no demand over a review interval tau) = exp(-c tau), per row at ``pos``.
+
+    Customer demand follows the simulator's rule (``demand_model="auto"``): Poisson where the daily
+    variance is at most ``1 + POISSON_DISPERSION_TOL`` times the daily mean (``c`` = the mean rate), else
+    compound Poisson with logarithmic sizes, whose counts are negative binomial over any interval
+    (:func:`models.joint.no_demand_rate`). A site whose demand is (partly) the orders of the sites below
+    (``batched``, with their order quantities in ``table["_q"]``) adds their order rates ``D_j / Q_j``: the
+    superposed store order streams are taken as a Poisson stream of orders (an approximation; the
+    Palm-Khintchine theorem makes it exact in the limit of many small streams), so a single store's
+    regular orders are taken as more random than they are.
+    """
+    own = table["daily_mean"].fillna(0.0).to_numpy(float)[pos]
+    own_var = table["daily_sd"].fillna(0.0).to_numpy(float)[pos] ** 2
+    code = np.where(own_var > own * (1.0 + POISSON_DISPERSION_TOL), NEGBIN, POISSON)
+    rate = joint.no_demand_rate(own * dpy, own_var * dpy, code)
+    if batched.any() and "_q" in table:
+        through, _ = through_demand(table)
+        q = table["_q"].to_numpy(float)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            per_child = np.where(np.isfinite(q) & (q > 0) & (through > 0), through * dpy / q, 0.0)
+        key = pd.DataFrame({"site": table["site"].to_numpy(), "item": table["item"].to_numpy(),
+                            "row": np.arange(len(table))})
+        kids = pd.DataFrame({"site": table["upstream"].to_numpy(), "item": table["item"].to_numpy(),
+                             "rate": per_child})
+        kids = kids[kids["site"] != ""].merge(key, on=["site", "item"], how="inner")
+        child_rate = np.bincount(kids["row"].to_numpy(np.int64), weights=kids["rate"].to_numpy(float),
+                                 minlength=len(table))
+        rate = rate + np.where(batched, child_rate[pos], 0.0)
+    return rate
+
+
+def _set_orders(out: pd.DataFrame, active: np.ndarray, rec: dict, fam: gm.Family, cycle: float,
+                multiples: np.ndarray, item_cost: np.ndarray, shared_rate: float, joint_rate: float) -> None:
+    """Expected orders and ordering costs of a grouped family; the shared cost spread by expected orders.
+
+    Item ``i`` orders ``p_i / (k_i T)`` times a year (``p_i`` = chance that a review orders,
+    :func:`models.grouping_milp.order_probabilities`); the family's expected shared cost a year
+    ``shared_rate`` (``S`` x expected joint orders ``joint_rate``) is spread over the items in proportion to
+    their expected orders (with every review ordering: in proportion to ``1 / k_i``, how often they come
+    along).
+    """
+    p = gm.order_probabilities(fam, cycle, multiples)
+    orders = p / (float(cycle) * np.asarray(multiples, dtype=float))
+    line = fam.minor_cost * orders
+    share = orders / np.sum(orders) if np.sum(orders) > 0 else np.full(orders.size, 1.0 / orders.size)
+    out.loc[active, "order_probability"] = p
+    out.loc[active, "orders_per_year"] = orders
+    out.loc[active, "ordering_cost"] = line + shared_rate * share
+    out.loc[active, "annual_cost"] = item_cost + shared_rate * share
+    rec.update(orders_per_year=joint_rate, shared_cost=shared_rate, line_cost=float(line.sum()),
+               ordering_cost=shared_rate + float(line.sum()))
 
 
 def _batched_rows(table: pd.DataFrame, pos: np.ndarray, window: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -522,13 +580,15 @@ def group_case(
                             "order_interval_days": np.nan, "order_up_to": np.nan, "safety_factor": np.nan,
                             "annual_cost": 0.0, "independent_cost": 0.0, "status": "no demand",
                             "demand_basis": "", "window_demand_sd": np.nan, "fill_rate": np.nan,
-                            "expected_on_hand": np.nan})
+                            "expected_on_hand": np.nan, "order_probability": np.nan,
+                            "orders_per_year": np.nan, "ordering_cost": np.nan})
         rec: dict[str, Any] = {
             "family": f["family"], "kind": f["kind"], "site": f["site"], "supplier": f["supplier"],
             "items": int(active.sum()), "base_cycle_days": np.nan, "independent_cost": 0.0,
             "grouped_cost": 0.0, "savings": 0.0, "savings_pct": 0.0, "binding": "", "gap": np.nan,
             "candidates": 0, "candidates_kept": 0, "seconds": 0.0, "tolerance_proven": False,
-            "shared_run": "", "demand_basis": "",
+            "shared_run": "", "demand_basis": "", "orders_per_year": np.nan, "shared_cost": np.nan,
+            "line_cost": np.nan, "ordering_cost": np.nan,
         }
         act = rows[active]
         if not active.any():
@@ -576,12 +636,13 @@ def group_case(
             if math.isfinite(cap) and np.any(~np.isfinite(arr)):
                 warnings.append(f"family {f['family']}: {int(np.sum(~np.isfinite(arr)))} item(s) have no "
                                 f"{name}; they are counted as 0 against the order capacity")
+        no_order = _no_demand_rates(table, pos_all[active], batched, dpy)
         shelf = f["shelf"][active] / dpy if f["shelf"] is not None else np.full(len(act), np.inf)
         shelf = np.where(np.isfinite(shelf), shelf, np.inf)
         target = act["target"].to_numpy(float) if settings.mode != "cost" else None
 
         def build(lead_sd_days: np.ndarray, f=f, minor=minor, act=act, vol=vol, wgt=wgt, shelf=shelf,
-                  target=target) -> gm.Family:
+                  target=target, no_order=no_order) -> gm.Family:
             return gm.make_family(
                 f["major"], minor, act["holding_cost"].to_numpy(float), act["annual_demand"].to_numpy(float),
                 demand_var=act["_var"].to_numpy(float) * dpy,
@@ -591,6 +652,7 @@ def group_case(
                 volume=np.nan_to_num(vol, nan=0.0), weight=np.nan_to_num(wgt, nan=0.0), max_interval=shelf,
                 capacity_volume=f["cap_v"], capacity_weight=f["cap_w"], min_order_value=f["min_value"],
                 backorder_basis=settings.backorder_basis, mode=settings.mode, target=target,
+                no_demand_rate=no_order,
             )
 
         if n_lim:
@@ -628,7 +690,8 @@ def group_case(
             fam = build(np.sqrt(sl**2 + spread))
             item_cost, z_fin, up_fin = gm.policy_costs(fam, sol.cycle, np.asarray(sol.multiples))
             sol = dc_replace(sol, item_cost=item_cost, safety_factor=z_fin, order_up_to=up_fin,
-                             total_cost=sol.major_cost_rate + float(np.sum(item_cost)))
+                             total_cost=sol.major_cost_rate + float(np.sum(item_cost)),
+                             expected_total_cost=sol.expected_major_cost_rate + float(np.sum(item_cost)))
             rec["demand_basis"] = (f"store orders in batches ({passes} solve(s); the last moved the batching "
                                    f"variance by {100 * moved:.1f}%; levels at the chosen windows)")
         else:
@@ -642,11 +705,10 @@ def group_case(
         out.loc[active, "order_interval_days"] = T_days * sol.multiples
         out.loc[active, "order_up_to"] = sol.order_up_to
         out.loc[active, "safety_factor"] = sol.safety_factor
-        # the shared cost is spread over the items in proportion to how often they come along
-        share = (1.0 / sol.multiples) / np.sum(1.0 / sol.multiples)
-        out.loc[active, "annual_cost"] = sol.item_cost + sol.major_cost_rate * share
+        _set_orders(out, active, rec, fam, sol.cycle, np.asarray(sol.multiples), sol.item_cost,
+                    sol.expected_major_cost_rate, sol.joint_orders_rate)
         out.loc[active, "status"] = sol.status
-        grouped = sol.total_cost
+        grouped = sol.expected_total_cost
         rec.update(status=sol.status, base_cycle_days=T_days, grouped_cost=grouped,
                    savings=rec["independent_cost"] - grouped,
                    savings_pct=(rec["independent_cost"] - grouped) / rec["independent_cost"] * 100.0
@@ -725,8 +787,9 @@ def _apply_runs(runs: pd.DataFrame, solved: dict, fam_rows: list, group_rows: li
                 out.loc[active, "order_up_to"] = up
                 out.loc[active, "safety_factor"] = z
                 _set_predictions(out, active, fam, T, k, z)
-                weight = (1.0 / k) / np.sum(1.0 / k)
-                out.loc[active, "annual_cost"] = item_cost + major * weight
+                # a rider pays its join cost and run share every run cycle (the model's charge)
+                _set_orders(out, active, fam_rows[pos], fam, T, np.asarray(k), item_cost, major,
+                            gm.expected_shared_rate(fam, T, np.asarray(k)))
                 out.loc[active, "status"] = res.status
                 rec = fam_rows[pos]
                 grouped = float(item_cost.sum()) + major

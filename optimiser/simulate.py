@@ -46,6 +46,7 @@ import pandas as pd
 from numpy.typing import ArrayLike
 from scipy import stats as _sps
 
+from models import joint as joint_model
 from optimiser import sim_kernel as _k
 from optimiser.sim_kernel import DEMAND_COMPOUND, DEMAND_NORMAL_DAILY, DEMAND_POISSON
 
@@ -924,7 +925,8 @@ def run_simulation(
 
 
 FAMILY_COLUMNS = ["family", "site", "base_cycle_days", "major_cost"]  # required in ``families``
-GROUP_PLANNED = ("cycle_multiple", "annual_cost", "fill_rate", "expected_on_hand")  # optional (groups.csv)
+GROUP_PLANNED = ("cycle_multiple", "annual_cost", "fill_rate", "expected_on_hand",
+                 "order_probability")  # optional (groups.csv)
 MULTIPLE_TOL = 1e-3  # an item's interval must be within this many base cycles of a whole multiple
 DUE_CYCLES_LIMIT = 100_000  # planned joint orders: base cycles scanned for "some item due"
 
@@ -951,7 +953,8 @@ def family_costs(sim: NetworkSimulation, families: pd.DataFrame, table: pd.DataF
         The simulation, with its review log (``review_orders``).
     families : DataFrame
         One row per grouped (site, item): ``family, site, item, base_cycle_days, major_cost, line_cost`` and
-        optionally ``cycle_multiple, annual_cost, fill_rate, expected_on_hand`` (planned, ``groups.csv``).
+        optionally ``cycle_multiple, annual_cost, fill_rate, expected_on_hand, order_probability`` (planned,
+        ``groups.csv``).
     table : DataFrame
         The simulated item-site rows (``site, item``).
     periodic : ndarray of bool, (rows,)
@@ -969,9 +972,11 @@ def family_costs(sim: NetworkSimulation, families: pd.DataFrame, table: pd.DataF
     families : DataFrame
         One row per family: ``family, site, items, base_cycle_days, major_cost`` (per joint order), then
         simulated ``orders_per_year`` (joint orders), ``shared_cost``, ``line_cost``, ``ordering_cost`` (each
-        a year, with ``_ci``) and the planned ``planned_orders_per_year`` (base cycles in which some item is
-        due), ``planned_shared_cost`` (S/T, as the grouping model charges it), ``planned_line_cost``
-        (sum of s_i/(k_i T)), ``planned_ordering_cost``, ``planned_grouped_cost`` (sum of ``annual_cost``).
+        a year, with ``_ci``) and the planned ``planned_orders_per_year`` (expected base cycles in which some
+        due item orders, with ``order_probability`` p_i from the groups; without it, base cycles in which some
+        item is due), ``planned_shared_cost`` (S x those expected joint orders; without p, S/T as the grouping
+        model charges it), ``planned_line_cost`` (sum of s_i p_i/(k_i T)), ``planned_ordering_cost``,
+        ``planned_grouped_cost`` (sum of ``annual_cost``).
     columns : dict
         Per row: ``grouped`` (bool), ``family`` (name), ``family_index`` (-1 where not grouped),
         ``line_cost`` and ``shared_cost`` (K, rows), ``planned_orders_per_year``, ``planned_ordering_cost``,
@@ -990,8 +995,10 @@ def family_costs(sim: NetworkSimulation, families: pd.DataFrame, table: pd.DataF
     (S x joint orders + sum_i s_i x orders_i) / measured years. The shared cost is allocated to the items
     of a family in proportion to their orders in the replication (the grouping model's allocation, in
     proportion to 1/k_i, is the same rule when every review orders). Planned joint orders a year =
-    (share of base cycles b in which some k_i divides b) / T; the grouping model charges S every base
-    cycle (S/T), which is the same when some k_i = 1.
+    (1/L) sum_{b=1..L} [1 - prod_{i: k_i | b} (1 - p_i)] / T over the common period L = lcm(k)
+    (``models.joint.expected_joint_share``), p_i the chance that a review of item i orders; without p
+    (p = 1) the share of base cycles in which some k_i divides b, with the shared cost S/T the grouping
+    model charges every base cycle (the same when some k_i = 1).
 
     References
     ----------
@@ -1081,15 +1088,24 @@ def family_costs(sim: NetworkSimulation, families: pd.DataFrame, table: pd.DataF
     line_fam = np.zeros((k_rep, n_fam))
     np.add.at(line_fam, (slice(None), f_of), line_cost[:, row])
 
-    # planned figures of the grouping (every review orders)
-    inv_k = 1.0 / mult
+    # planned figures of the grouping: a review orders with probability p (groups.csv order_probability;
+    # without it every review orders and the shared cost is S/T, the model's charge)
+    has_p = "order_probability" in joined
+    p_ord = (np.clip(np.nan_to_num(pd.to_numeric(joined["order_probability"], errors="coerce")
+                                   .to_numpy(float), nan=1.0), 0.0, 1.0) if has_p else np.ones(len(row)))
+    inv_k = p_ord / mult
     sum_inv = np.bincount(f_of, weights=inv_k, minlength=n_fam)
+    planned_joint = np.array([_due_share(mult[f_of == f]) if not has_p
+                              else joint_model.expected_joint_share(mult[f_of == f], p_ord[f_of == f])
+                              for f in range(n_fam)]) * days_per_year / base
+    planned_shared = major * (planned_joint if has_p else days_per_year / base)
     planned_orders = np.full(rows, np.nan)
-    planned_orders[row] = days_per_year / interval
-    planned_line_item = line * days_per_year / interval
+    planned_orders[row] = p_ord * days_per_year / interval
+    planned_line_item = line * p_ord * days_per_year / interval
     planned_ordering = np.full(rows, np.nan)
-    planned_ordering[row] = (planned_line_item
-                             + major[f_of] * days_per_year / base[f_of] * inv_k / sum_inv[f_of])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        weight = np.where(sum_inv[f_of] > 0, inv_k / sum_inv[f_of], 0.0)
+    planned_ordering[row] = planned_line_item + planned_shared[f_of] * weight
     planned_annual = np.full(rows, np.nan)
     if "annual_cost" in joined:
         planned_annual[row] = pd.to_numeric(joined["annual_cost"], errors="coerce").to_numpy(float)
@@ -1111,8 +1127,8 @@ def family_costs(sim: NetworkSimulation, families: pd.DataFrame, table: pd.DataF
                            ("ordering_cost", shared_fam[:, f] + line_fam[:, f])):
             rec[label] = float(np.mean(per))
             rec[f"{label}_ci"] = float(confidence_half_width(per[:, None], axis=0)[0])
-        rec["planned_orders_per_year"] = _due_share(mult[sel]) * days_per_year / base[f]
-        rec["planned_shared_cost"] = major[f] * days_per_year / base[f]
+        rec["planned_orders_per_year"] = planned_joint[f]
+        rec["planned_shared_cost"] = planned_shared[f]
         rec["planned_line_cost"] = float(planned_line_item[sel].sum())
         rec["planned_ordering_cost"] = rec["planned_shared_cost"] + rec["planned_line_cost"]
         rec["planned_grouped_cost"] = float(planned_annual[row][sel].sum()) if "annual_cost" in joined \
@@ -1382,7 +1398,7 @@ def _merge_groups(given, path: Path, itemsites):
     if missing:
         raise ValueError(f"{path.name}: missing column(s) {', '.join(missing)}")
     extra = [c for c in ("family", "base_cycle_days", "cycle_multiple", "annual_cost", "fill_rate",
-                         "expected_on_hand") if c in groups.columns]
+                         "expected_on_hand", "order_probability") if c in groups.columns]
     groups = groups[need + extra].copy()
     for c in ("order_interval_days", "order_up_to"):
         groups[c] = pd.to_numeric(groups[c], errors="coerce")

@@ -396,3 +396,50 @@ def test_random_mixed_limits_against_brute_force(seed):
     else:
         assert r.status == "optimal" and r.feasible
         assert r.total_cost <= best * (1 + 1e-9)
+
+
+# --------------------------------------------------------------------------- slow movers
+def _slow_family(order_model):
+    return gm.make_family(40.0, [6.0, 4.0, 9.0, 3.0], [3.0, 8.0, 2.0, 5.0], [6.0, 20.0, 3.0, 120.0],
+                          demand_var=[6.0, 20.0, 9.0, 120.0], lead_time=0.02, backorder_cost=30.0,
+                          order_model=order_model)
+
+
+def test_every_review_orders_reproduces_the_classical_model():
+    """order_model NORMAL (p = 1) gives the same cycle, multiples and cost as no order model, bit for bit;
+    the expected shared cost equals S/T when some item comes every cycle (common practice)."""
+    a = gm.solve_family(_slow_family(None))
+    b = gm.solve_family(_slow_family([0, 0, 0, 0]))
+    assert (a.cycle, a.multiples.tolist(), a.total_cost) == (b.cycle, b.multiples.tolist(), b.total_cost)
+    assert np.array_equal(a.item_cost, b.item_cost)
+    assert np.all(b.order_probability == 1.0)
+    assert 1 in b.multiples.tolist()
+    assert b.expected_total_cost == pytest.approx(b.total_cost, rel=1e-14)
+
+
+def test_slow_movers_line_cost_and_brute_force():
+    """With Poisson slow movers the line cost is s p(tau)/tau, p = 1 - exp(-lambda tau); the MILP's cost is
+    no higher than brute force over a fine T grid and k <= 6 of S/T + the items' costs (exhaustive search),
+    and below the classical model's cost of the same policy."""
+    fam = _slow_family([1, 1, 2, 1])
+    sol = gm.solve_family(fam, k_max=6)
+    assert sol.status == "optimal"
+    classic = _slow_family(None)
+    c_old, _, _ = gm.policy_costs(classic, sol.cycle, sol.multiples)
+    c_new, _, _ = gm.policy_costs(fam, sol.cycle, sol.multiples)
+    tau = sol.cycle * sol.multiples
+    p = np.array([1 - math.exp(-6.0 * tau[0]), 1 - math.exp(-20.0 * tau[1]), 0.0,
+                  1 - math.exp(-120.0 * tau[3])])
+    # item 2: negative binomial, mean 3 tau, variance 9 tau: P(0) = (1/3)^(3 tau / 2)
+    p[2] = 1 - (1 / 3) ** (1.5 * tau[2])
+    assert c_old - c_new == pytest.approx(fam.minor_cost * (1 - p) / tau, rel=1e-9)
+    assert sol.order_probability == pytest.approx(p, rel=1e-12)
+    best = math.inf
+    for T in np.geomspace(0.005, 0.5, 1500):
+        costs = np.array([gm.policy_costs(fam, T, np.full(4, k))[0] for k in range(1, 7)])
+        best = min(best, fam.major_cost / T + float(costs.min(axis=0).sum()))
+    assert sol.total_cost <= best * (1 + 1e-9)
+    assert sol.total_cost == pytest.approx(best, rel=5e-3)
+    # the expected shared cost is at most S/T and the shared upper bound is what the model minimised
+    assert sol.expected_major_cost_rate <= sol.major_cost_rate * (1 + 1e-12)
+    assert sol.expected_total_cost == pytest.approx(sol.expected_major_cost_rate + sol.item_cost.sum())

@@ -162,3 +162,39 @@ def test_huge_and_tiny_values():
     assert np.isfinite(ex.cost) and ex.converged
     # the cost cannot beat the lower bound
     assert joint.roundy_bound(1e3, s, H).cost <= ex.cost * (1 + 1e-9)
+
+
+# --------------------------------------------------------------------------- slow movers
+def test_order_probability_matches_scipy_zero_probabilities():
+    """P(a review orders) = 1 - P(no demand over tau): Poisson pmf(0; lambda tau) and the negative binomial
+    pmf(0) with mean lambda tau and variance sigma^2 tau (scipy.stats reference; parameterisation
+    r = m^2/(v - m), p = m/v, Johnson, Kemp & Kotz, Univariate Discrete Distributions, 2005)."""
+    from scipy import stats
+
+    rng = np.random.default_rng(5)
+    lam = rng.uniform(0.5, 60.0, 40)
+    disp = rng.uniform(1.05, 6.0, 40)
+    tau = rng.uniform(0.002, 0.3, 40)
+    p_pois = joint.order_probability(tau, lam, lam, 1)
+    assert p_pois == pytest.approx(1.0 - stats.poisson.pmf(0, lam * tau), rel=1e-12, abs=1e-15)
+    m, v = lam * tau, lam * disp * tau
+    p_nb = joint.order_probability(tau, lam, lam * disp, 2)
+    assert p_nb == pytest.approx(1.0 - stats.nbinom.pmf(0, m * m / (v - m), m / v), rel=1e-10, abs=1e-14)
+    # normal items order at every review; NB without overdispersion is Poisson; no demand never orders
+    assert np.all(joint.order_probability(tau, lam, lam * disp, 0) == 1.0)
+    assert joint.order_probability(0.1, 4.0, 3.0, 2) == pytest.approx(1.0 - math.exp(-0.4), rel=1e-12)
+    assert joint.order_probability(0.1, 0.0, 0.0, 1) == 0.0
+    with pytest.raises(ValueError, match="model"):
+        joint.no_demand_rate(1.0, 1.0, 3)
+
+
+def test_expected_joint_share_two_items():
+    """Items at multiples 1 and 2: odd cycles order with p_a, even ones with 1 - (1 - p_a)(1 - p_b)
+    (independent Poisson streams; Feller, An Introduction to Probability Theory and Its Applications I,
+    1968). Rates 0.1 and 0.05 a day, T = 5 days (the simulator test's case)."""
+    p_a, p_b = 1 - math.exp(-0.5), 1 - math.exp(-0.5)
+    want = (p_a + (1 - (1 - p_a) * (1 - p_b))) / 2
+    assert joint.expected_joint_share([1, 2], [p_a, p_b]) == pytest.approx(want, rel=1e-14)
+    # p = 1: the share of base cycles with an item due (k = 2, 3: cycles 2, 3, 4, 6 of every 6)
+    assert joint.expected_joint_share([2, 3], [1.0, 1.0]) == pytest.approx(4 / 6, rel=1e-14)
+    assert joint.expected_joint_share([1, 5], [1.0, 0.3]) == 1.0

@@ -787,3 +787,55 @@ def test_family_shared_cost_moderate_poisson_demand():
     assert fam["ordering_cost"] == pytest.approx(expected, rel=1e-9)
     assert out.loc[["a", "b"], "ordering_cost"].sum() == pytest.approx(expected, rel=1e-9)
     assert fam["ordering_cost"] == pytest.approx(50.0 * joint + 5.0 * 70 * p_a + 3.0 * 35 * p_a, rel=0.03)
+
+
+def test_slow_mover_family_planned_figures_match_simulation():
+    """A family of slow movers planned by the grouping model with p_i = 1 - exp(-lambda_i k_i T) (Poisson
+    zero probability; Feller, An Introduction to Probability Theory and Its Applications I, 1968): the
+    simulated joint orders a year, each item's orders and the family's line cost fall within the
+    simulation's interval of the planned expected figures, which the simulator puts beside them from
+    groups.csv's order_probability; the figures of the classical model (every review orders) do not."""
+    from types import SimpleNamespace
+
+    from models import grouping_milp as gm
+    from models.demand import POISSON
+    from optimiser.simulate import run_simulation
+
+    dpy = 350.0
+    daily = np.array([0.1, 0.05, 0.03])  # invented; costly to hold, so short cycles and p from 0.3 to 0.7
+    fam = gm.make_family(20.0, [8.0, 5.0, 6.0], 300.0, daily * dpy, demand_var=daily * dpy,
+                         lead_time=3.0 / dpy, backorder_cost=300.0, order_model=POISSON)
+    sol = gm.solve_family(fam, k_max=8)
+    T_days = sol.cycle * dpy
+    items = ["a", "b", "c"]
+    table = pd.DataFrame({
+        "site": "wh", "item": items, "upstream": "", "daily_mean": daily, "daily_sd": np.sqrt(daily),
+        "lead_days": 3.0, "lead_days_sd": 0.0, "order_cost": 0.0, "holding_cost": 300.0,
+        "backorder_cost": 300.0})
+    pol = pd.DataFrame({"site": "wh", "item": items, "order_interval_days": T_days * sol.multiples,
+                        "order_up_to": np.ceil(sol.order_up_to)})
+    fams = pd.DataFrame({"family": "wh/s", "site": "wh", "item": items, "base_cycle_days": T_days,
+                         "major_cost": 20.0, "line_cost": [8.0, 5.0, 6.0], "cycle_multiple": sol.multiples,
+                         "order_probability": sol.order_probability})
+    res = run_simulation(table, pol, SimpleNamespace(days_per_year=dpy, backorder_basis="per_unit"),
+                         years=40.0, warmup_years=0.2, replications=8, seed=23, families=fams)
+    out = res.families.iloc[0]
+    joint = sol.joint_orders_rate
+    line = float(np.sum(fam.minor_cost * sol.order_probability / (sol.cycle * sol.multiples)))
+    assert out["planned_orders_per_year"] == pytest.approx(joint, rel=1e-9)
+    assert out["planned_line_cost"] == pytest.approx(line, rel=1e-9)
+    assert out["planned_shared_cost"] == pytest.approx(sol.expected_major_cost_rate, rel=1e-9)
+    assert _within(out["orders_per_year"], out["orders_per_year_ci"], joint)
+    assert _within(out["line_cost"], out["line_cost_ci"], line)
+    assert _within(out["ordering_cost"], out["ordering_cost_ci"], sol.expected_major_cost_rate + line)
+    tab = res.table.set_index("item")
+    planned_item = sol.order_probability / (sol.cycle * sol.multiples)
+    assert np.all(_within(tab.loc[items, "orders_per_year"], tab.loc[items, "orders_per_year_ci"],
+                          planned_item))
+    assert tab.loc[items, "planned_orders_per_year"].to_numpy() == pytest.approx(planned_item, rel=1e-9)
+    # the classical figures (every review orders; S every base cycle) lie well outside the intervals
+    classic_line = float(np.sum(fam.minor_cost / (sol.cycle * sol.multiples)))
+    assert not _within(out["line_cost"], out["line_cost_ci"], classic_line)
+    assert not _within(out["ordering_cost"], out["ordering_cost_ci"], sol.major_cost_rate + classic_line)
+    assert not _within(out["orders_per_year"], out["orders_per_year_ci"], 1.0 / sol.cycle)
+    assert sol.order_probability.max() < 0.8
