@@ -348,3 +348,61 @@ def test_grouping_demand_basis_switch(case_writer):
     without = group_case(case, batch_basis=False).groups.set_index("item")
     assert (without["demand_basis"] == "customer demand").all()
     assert (without["window_demand_sd"] < with_batches["window_demand_sd"]).all()
+
+
+def test_slow_movers_expected_orders_in_the_outputs(case_writer):
+    """Slow movers: groups.csv's order_probability is 1 - P(no demand over the interval) with the
+    simulator's demand (Poisson where the variance does not exceed the mean, else negative binomial with
+    that mean and variance; scipy.stats zero probabilities), orders_per_year = p / interval, and the
+    families' expected figures add up (shared cost = S x expected joint orders <= S / T; common practice)."""
+    from scipy import stats
+
+    case = dict(ONE_SITE)
+    case["demand.csv"] = """\
+        site,item,daily_mean,daily_sd
+        shop,a1,0.2,0.6
+        shop,a2,0.05,0.2236068
+        shop,a3,0.1,0.2
+        shop,b1,8,3
+        shop,b2,5,2
+        shop,b3,0,0
+        """
+    res = group_case(load_case(case_writer(case)))
+    g = res.groups.set_index("item")
+    tau = g.loc[["a1", "a2", "a3"], "order_interval_days"].to_numpy(float)
+    m = np.array([0.2, 0.05, 0.1]) * tau
+    v = np.array([0.36, 0.05, 0.04]) * tau
+    p0 = np.array([stats.nbinom.pmf(0, m[0] ** 2 / (v[0] - m[0]), m[0] / v[0]),
+                   stats.poisson.pmf(0, m[1]), stats.poisson.pmf(0, m[2])])
+    p = g.loc[["a1", "a2", "a3"], "order_probability"].to_numpy(float)
+    np.testing.assert_allclose(p, 1.0 - p0, rtol=1e-6)
+    assert p.min() < 0.9  # a3 orders at fewer than 9 in 10 reviews
+    np.testing.assert_allclose(g.loc[["a1", "a2", "a3"], "orders_per_year"], p * 360 / tau, rtol=1e-9)
+    fam = res.families.set_index("family")
+    row = fam.loc["shop/alpha"]
+    assert row["ordering_cost"] == pytest.approx(row["shared_cost"] + row["line_cost"], rel=1e-12)
+    assert row["shared_cost"] == pytest.approx(120.0 * row["orders_per_year"], rel=1e-12)
+    assert row["orders_per_year"] < 360 / row["base_cycle_days"]
+    line = float(np.sum(np.array([4.0, 9.0, 4.0]) * p * 360 / tau))
+    assert row["line_cost"] == pytest.approx(line, rel=1e-9)
+    per = res.groups.groupby("family")[["annual_cost", "ordering_cost"]].sum()
+    np.testing.assert_allclose(per.loc[fam.index, "annual_cost"], fam["grouped_cost"], rtol=1e-9)
+    np.testing.assert_allclose(per.loc[fam.index, "ordering_cost"], fam["ordering_cost"], rtol=1e-9)
+
+
+def test_warehouse_order_probability_from_store_order_rates(case_writer):
+    """At a warehouse the review orders when some store ordered: the stores' orders are taken as a Poisson
+    stream at rate sum_j D_j / Q_j (Q_j their single-site order quantities), so p = 1 - exp(-tau sum D_j/Q_j)
+    (approximation stated in the README; Palm-Khintchine superposition, common practice)."""
+    from optimiser.grouping import store_order_quantities
+    from optimiser.itemsites import build_itemsites
+
+    case = load_case(case_writer(TWO_LEVEL))
+    table = build_itemsites(case)
+    q = store_order_quantities(case, table).set_index(["site", "item"])["order_quantity"]
+    res = group_case(case)
+    g = res.groups.set_index("item")
+    for item, rates in (("a", {"s1": 6.0, "s2": 4.0}), ("b", {"s1": 2.0, "s2": 1.5})):
+        c = sum(d / q[(s, item)] for s, d in rates.items())  # store orders a day
+        assert g.loc[item, "order_probability"] == pytest.approx(
+            1.0 - math.exp(-c * g.loc[item, "order_interval_days"]), rel=1e-9)
