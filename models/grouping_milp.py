@@ -22,7 +22,9 @@ the line cost of (item, interval ``tau``) is ``s_i p_i(tau) / tau``, ``p_i = 1 -
 The family's shared cost is paid only in base cycles in which some due item orders, a chance ``1 - prod (1 -
 p_i)`` that is not linear in the multiples; the objective keeps ``S / T`` (an upper bound) and the solution
 reports the expected shared cost (:func:`expected_shared_rate`). ``p`` is concave with ``p(0) = 0``, so
-``s p(tau) / tau`` decreases and ``s p(tau)`` increases in ``tau``: the tolerance proof below holds unchanged.
+``s p(tau) / tau`` decreases and ``s p(tau)`` increases in ``tau``: the tolerance proof below holds unchanged
+(for a site supplying others, ``p = 1 - prod_j E[(Q_j - D_j)+] / Q_j`` is concave too, as each factor is
+decreasing and convex; there it is tabulated, so up to the interpolation).
 
 Candidate set and its tolerance
 -------------------------------
@@ -252,6 +254,7 @@ class Family:
     mode: str = "cost"
     target: np.ndarray | None = None
     no_demand_rate: np.ndarray | None = None  # c_i: P(review orders) = 1 - exp(-c_i tau); None = always
+    no_order_table: tuple | None = None  # (step, log P0 (n, G)) on tau = 0, step, ...: extra log P(no order)
 
 
 def make_family(
@@ -276,6 +279,7 @@ def make_family(
     target=None,
     order_model=None,
     no_demand_rate=None,
+    no_order_table=None,
 ) -> Family:
     """Validate and broadcast the data of one family.
 
@@ -298,6 +302,11 @@ def make_family(
     no_demand_rate : array_like, optional
         Instead of ``order_model``: the rate ``c_i >= 0`` per year (``inf`` = every review orders) with
         ``P(no demand in tau) = exp(-c_i tau)`` given directly (e.g. the order rate of the sites below).
+    no_order_table : tuple (float, array_like of shape (n, G)), optional
+        ``(step, log_p0)``: a further factor of ``P(no order in tau)`` tabulated at ``tau = 0, step, ...,
+        (G - 1) step`` years (``log_p0 <= 0``, linear between the points and beyond the last two), for an
+        item whose demand is the batch orders of the sites below (needs ``no_demand_rate`` or
+        ``order_model``). ``p = 1 - exp(-c tau + log_p0(tau))``.
 
     Returns
     -------
@@ -357,6 +366,15 @@ def make_family(
     elif order_model is not None:
         codes = np.broadcast_to(np.asarray(order_model), (n,))
         fam = replace(fam, no_demand_rate=joint.no_demand_rate(fam.annual_demand, fam.demand_var, codes))
+    if no_order_table is not None:
+        step, table = float(no_order_table[0]), np.asarray(no_order_table[1], dtype=float)
+        if fam.no_demand_rate is None:
+            raise ValueError("no_order_table needs no_demand_rate or order_model")
+        if not (step > 0 and math.isfinite(step)):
+            raise ValueError(f"no_order_table: step must be finite and > 0, got {step!r}")
+        if table.ndim != 2 or table.shape[0] != n or table.shape[1] < 2 or np.any(~(table <= 0)):
+            raise ValueError(f"no_order_table: log_p0 must have shape ({n}, G >= 2) with values <= 0")
+        fam = replace(fam, no_order_table=(step, table))
     for name in ("capacity_volume", "capacity_weight"):
         v = getattr(fam, name)
         if math.isnan(v) or v <= 0:
@@ -464,12 +482,22 @@ def _ss_cost_at(fam: Family, tau: np.ndarray, item: np.ndarray) -> np.ndarray:
     return cost
 
 
-def _order_prob(fam: Family, tau: np.ndarray, rate: np.ndarray | None) -> np.ndarray | float:
-    """Probability that a review at interval ``tau`` orders (1.0 when the family has no order model)."""
-    if rate is None:
+def _order_prob(fam: Family, tau: np.ndarray, items: np.ndarray) -> np.ndarray | float:
+    """Probability that a review at interval ``tau`` orders (1.0 when the family has no order model);
+    ``items`` gives the item of each element of ``tau`` (broadcast)."""
+    if fam.no_demand_rate is None:
         return 1.0
+    rate = fam.no_demand_rate[items]
+    inf = np.isinf(rate)
     with np.errstate(invalid="ignore"):
-        return np.where(np.isinf(rate), 1.0, -np.expm1(-np.where(np.isinf(rate), 0.0, rate) * tau))
+        x = np.where(inf, 0.0, rate) * tau
+        if fam.no_order_table is not None:
+            step, table = fam.no_order_table
+            u = np.asarray(tau, dtype=float) / step
+            i = np.clip(np.floor(u), 0, table.shape[1] - 2).astype(np.int64)
+            f = u - i
+            x = x - ((1.0 - f) * table[items, i] + f * table[items, i + 1])
+        return np.where(inf, 1.0, -np.expm1(-np.maximum(x, 0.0)))
 
 
 def order_probabilities(fam: Family, T: float, k: np.ndarray) -> np.ndarray:
@@ -495,7 +523,7 @@ def order_probabilities(fam: Family, T: float, k: np.ndarray) -> np.ndarray:
     0.632121
     """
     tau = float(T) * np.asarray(k, dtype=float)
-    p = np.asarray(_order_prob(fam, tau, fam.no_demand_rate), dtype=float)
+    p = np.asarray(_order_prob(fam, tau, np.arange(fam.minor_cost.size)), dtype=float)
     return np.broadcast_to(p, tau.shape).copy()
 
 
@@ -529,8 +557,8 @@ def _deterministic_costs(fam: Family, T: np.ndarray, ks: np.ndarray) -> np.ndarr
     """Minor order cost + cycle stock of (candidate, item, multiple), inf beyond the shelf life."""
     tau = T[:, None, None] * ks[None, None, :]
     H = (fam.holding_cost * fam.annual_demand)[None, :, None]
-    rate = None if fam.no_demand_rate is None else fam.no_demand_rate[None, :, None]
-    det = fam.minor_cost[None, :, None] * _order_prob(fam, tau, rate) / tau + 0.5 * tau * H
+    items = np.arange(fam.minor_cost.size)[None, :, None]
+    det = fam.minor_cost[None, :, None] * _order_prob(fam, tau, items) / tau + 0.5 * tau * H
     return np.where(tau <= fam.max_interval[None, :, None] * (1 + 1e-12), det, np.inf)
 
 
@@ -565,7 +593,7 @@ def _item_costs(fam: Family, T: np.ndarray, ks: np.ndarray, det: np.ndarray | No
 def _policy_cost(fam: Family, T: float, k: np.ndarray):
     """Per-item cost, z, sigma of one policy."""
     tau = T * k
-    det = (fam.minor_cost * _order_prob(fam, tau, fam.no_demand_rate) / tau
+    det = (fam.minor_cost * _order_prob(fam, tau, np.arange(fam.minor_cost.size)) / tau
            + 0.5 * tau * fam.holding_cost * fam.annual_demand)
     ss, z, sig = periodic_review_cost(
         tau, fam.annual_demand, fam.demand_var, fam.lead_time, fam.lead_time_sd, fam.holding_cost,

@@ -83,6 +83,9 @@ class GroupResult:
                 "savings_pct": (ind - grp) / ind * 100.0 if ind > 0 else 0.0}
 
 
+NO_ORDER_STEP_DAYS = 0.5  # grid of the tabulated chance that no site below orders over a review interval
+NO_ORDER_SPAN_YEARS = 2.0  # its span (linear beyond)
+NO_ORDER_P0_MIN = 1e-300  # floor before the logarithm
 BATCH_PASSES = 2  # most solves of a family whose demand comes in batches from the sites below
 BATCH_RESOLVE_TOL = 0.05  # re-solve while the batching variance moves by more than this share of the total
 
@@ -237,36 +240,56 @@ def _set_predictions(out: pd.DataFrame, active: np.ndarray, fam: gm.Family, cycl
     out.loc[active, "expected_on_hand"] = sigma * normal_loss(-z) + per_cycle / 2.0
 
 
-def _no_demand_rates(table: pd.DataFrame, pos: np.ndarray, batched: np.ndarray, dpy: float) -> np.ndarray:
-    """Rate ``c`` per year with P(no demand over a review interval tau) = exp(-c tau), per row at ``pos``.
+def _no_order_model(table: pd.DataFrame, pos: np.ndarray, batched: np.ndarray,
+                    dpy: float) -> tuple[np.ndarray, tuple[float, np.ndarray] | None]:
+    """Chance that a review of the rows at ``pos`` finds no demand since the last one, for the grouping.
 
+    Returns the rate ``c`` per year of the site's own customers, P(no customer demand over tau) =
+    exp(-c tau), and for sites supplying others (``batched``, their order quantities in ``table["_q"]``)
+    the table ``(step, log P0)`` of :func:`models.grouping_milp.make_family` holding, per row, the sum over
+    the sites below of log P(that site places no order over tau).
+
+    Notes
+    -----
     Customer demand follows the simulator's rule (``demand_model="auto"``): Poisson where the daily
-    variance is at most ``1 + POISSON_DISPERSION_TOL`` times the daily mean (``c`` = the mean rate), else
-    compound Poisson with logarithmic sizes, whose counts are negative binomial over any interval
-    (:func:`models.joint.no_demand_rate`). A site whose demand is (partly) the orders of the sites below
-    (``batched``, with their order quantities in ``table["_q"]``) adds their order rates ``D_j / Q_j``: the
-    superposed store order streams are taken as a Poisson stream of orders (an approximation; the
-    Palm-Khintchine theorem makes it exact in the limit of many small streams), so a single store's
-    regular orders are taken as more random than they are.
+    variance is at most ``1 + POISSON_DISPERSION_TOL`` times the daily mean, else compound Poisson with
+    logarithmic sizes, whose counts are negative binomial over any interval
+    (:func:`models.joint.no_demand_rate`). A site below orders in batches of Q with its position uniform
+    over the Q steps above its reorder point, so it places no order over tau with probability
+    ``E[(Q - D(tau))+] / Q = (Q - mu + E[(D - Q)+]) / Q`` (``D`` its through demand over tau, same rule;
+    Q rounded to whole units); the sites below order independently of each other.
     """
+    from models.loss import loss
+
     own = table["daily_mean"].fillna(0.0).to_numpy(float)[pos]
     own_var = table["daily_sd"].fillna(0.0).to_numpy(float)[pos] ** 2
     code = np.where(own_var > own * (1.0 + POISSON_DISPERSION_TOL), NEGBIN, POISSON)
     rate = joint.no_demand_rate(own * dpy, own_var * dpy, code)
-    if batched.any() and "_q" in table:
-        through, _ = through_demand(table)
-        q = table["_q"].to_numpy(float)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            per_child = np.where(np.isfinite(q) & (q > 0) & (through > 0), through * dpy / q, 0.0)
-        key = pd.DataFrame({"site": table["site"].to_numpy(), "item": table["item"].to_numpy(),
-                            "row": np.arange(len(table))})
-        kids = pd.DataFrame({"site": table["upstream"].to_numpy(), "item": table["item"].to_numpy(),
-                             "rate": per_child})
-        kids = kids[kids["site"] != ""].merge(key, on=["site", "item"], how="inner")
-        child_rate = np.bincount(kids["row"].to_numpy(np.int64), weights=kids["rate"].to_numpy(float),
-                                 minlength=len(table))
-        rate = rate + np.where(batched, child_rate[pos], 0.0)
-    return rate
+    if not batched.any() or "_q" not in table:
+        return rate, None
+    through, through_var = through_demand(table)
+    q = table["_q"].to_numpy(float)
+    key = pd.DataFrame({"site": table["site"].to_numpy(), "item": table["item"].to_numpy(),
+                        "row": np.arange(len(table))})
+    kids = pd.DataFrame({"site": table["upstream"].to_numpy(), "item": table["item"].to_numpy(),
+                         "child": np.arange(len(table))})
+    kids = kids[kids["site"] != ""].merge(key, on=["site", "item"], how="inner")
+    local = {int(r): j for j, r in enumerate(pos)}
+    ch = kids["child"].to_numpy()
+    kids = kids[kids["row"].isin(list(local)).to_numpy() & np.isfinite(q[ch]) & (through[ch] > 0)]
+    grid = np.arange(int(math.ceil(NO_ORDER_SPAN_YEARS * dpy / NO_ORDER_STEP_DAYS)) + 1) * NO_ORDER_STEP_DAYS
+    log_p0 = np.zeros((pos.size, grid.size))
+    if len(kids):
+        c = kids["child"].to_numpy()
+        qq = np.maximum(np.round(q[c]), 1.0)[:, None]
+        d, v = through[c][:, None], through_var[c][:, None]
+        dist = np.where(v > d * (1.0 + POISSON_DISPERSION_TOL), NEGBIN, POISSON)
+        mu, var = d * grid[None, :], v * grid[None, :]
+        p0 = (qq - mu + loss(qq, mu, np.sqrt(var), np.broadcast_to(dist, mu.shape))) / qq
+        rows = np.array([local[int(r)] for r in kids["row"]], dtype=np.int64)
+        np.add.at(log_p0, rows, np.log(np.clip(p0, NO_ORDER_P0_MIN, 1.0)))
+    log_p0[:, 0] = 0.0
+    return rate, (NO_ORDER_STEP_DAYS / dpy, np.minimum(log_p0, 0.0))
 
 
 def _set_orders(out: pd.DataFrame, active: np.ndarray, rec: dict, fam: gm.Family, cycle: float,
@@ -636,13 +659,13 @@ def group_case(
             if math.isfinite(cap) and np.any(~np.isfinite(arr)):
                 warnings.append(f"family {f['family']}: {int(np.sum(~np.isfinite(arr)))} item(s) have no "
                                 f"{name}; they are counted as 0 against the order capacity")
-        no_order = _no_demand_rates(table, pos_all[active], batched, dpy)
+        no_order, no_order_table = _no_order_model(table, pos_all[active], batched, dpy)
         shelf = f["shelf"][active] / dpy if f["shelf"] is not None else np.full(len(act), np.inf)
         shelf = np.where(np.isfinite(shelf), shelf, np.inf)
         target = act["target"].to_numpy(float) if settings.mode != "cost" else None
 
         def build(lead_sd_days: np.ndarray, f=f, minor=minor, act=act, vol=vol, wgt=wgt, shelf=shelf,
-                  target=target, no_order=no_order) -> gm.Family:
+                  target=target, no_order=no_order, no_order_table=no_order_table) -> gm.Family:
             return gm.make_family(
                 f["major"], minor, act["holding_cost"].to_numpy(float), act["annual_demand"].to_numpy(float),
                 demand_var=act["_var"].to_numpy(float) * dpy,
@@ -652,7 +675,7 @@ def group_case(
                 volume=np.nan_to_num(vol, nan=0.0), weight=np.nan_to_num(wgt, nan=0.0), max_interval=shelf,
                 capacity_volume=f["cap_v"], capacity_weight=f["cap_w"], min_order_value=f["min_value"],
                 backorder_basis=settings.backorder_basis, mode=settings.mode, target=target,
-                no_demand_rate=no_order,
+                no_demand_rate=no_order, no_order_table=no_order_table,
             )
 
         if n_lim:

@@ -390,10 +390,14 @@ def test_slow_movers_expected_orders_in_the_outputs(case_writer):
     np.testing.assert_allclose(per.loc[fam.index, "ordering_cost"], fam["ordering_cost"], rtol=1e-9)
 
 
-def test_warehouse_order_probability_from_store_order_rates(case_writer):
-    """At a warehouse the review orders when some store ordered: the stores' orders are taken as a Poisson
-    stream at rate sum_j D_j / Q_j (Q_j their single-site order quantities), so p = 1 - exp(-tau sum D_j/Q_j)
-    (approximation stated in the README; Palm-Khintchine superposition, common practice)."""
+def test_warehouse_order_probability_from_store_batches(case_writer):
+    """At a warehouse a review orders when some store ordered since the last one. A store ordering in
+    batches of Q with its position uniform over the Q steps above its reorder point orders over tau unless
+    D(tau) < Q - U: P(no order) = E[(Q - D)+] / Q, computed here by summing scipy's negative binomial pmf
+    (the simulator's compound demand: mean and variance of the store's daily demand x tau); stores
+    independent (Hadley & Whitin, Analysis of Inventory Systems, 1963: uniform position of (R, Q))."""
+    from scipy import stats
+
     from optimiser.grouping import store_order_quantities
     from optimiser.itemsites import build_itemsites
 
@@ -402,7 +406,14 @@ def test_warehouse_order_probability_from_store_order_rates(case_writer):
     q = store_order_quantities(case, table).set_index(["site", "item"])["order_quantity"]
     res = group_case(case)
     g = res.groups.set_index("item")
-    for item, rates in (("a", {"s1": 6.0, "s2": 4.0}), ("b", {"s1": 2.0, "s2": 1.5})):
-        c = sum(d / q[(s, item)] for s, d in rates.items())  # store orders a day
-        assert g.loc[item, "order_probability"] == pytest.approx(
-            1.0 - math.exp(-c * g.loc[item, "order_interval_days"]), rel=1e-9)
+    demand = {"a": {"s1": (6.0, 3.0), "s2": (4.0, 2.5)}, "b": {"s1": (2.0, 1.6), "s2": (1.5, 1.4)}}
+    for item, stores in demand.items():
+        tau = g.loc[item, "order_interval_days"]
+        p0 = 1.0
+        for s, (d, sd) in stores.items():
+            m, v, qq = d * tau, sd * sd * tau, max(round(q[(s, item)]), 1)
+            k = np.arange(qq)
+            p0 *= np.sum((qq - k) * stats.nbinom.pmf(k, m * m / (v - m), m / v)) / qq
+        # the chance is tabulated every half day and interpolated in between
+        assert g.loc[item, "order_probability"] == pytest.approx(1.0 - p0, rel=2e-3)
+        assert 0.5 < g.loc[item, "order_probability"] < 1.0
