@@ -15,9 +15,6 @@ from __future__ import annotations
 
 import json
 import math
-import os
-import shutil
-import tempfile
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from dataclasses import replace as dc_replace
@@ -850,14 +847,10 @@ def write_groups(
     --------
     >>> write_groups(group_case(load_case("cases/demo")), "out/groups")  # doctest: +SKIP
     """
-    from optimiser.report import TOOL, _check_target, _clean, tool_version
+    from optimiser.report import TOOL, _clean, atomic_folder, tool_version
 
-    target = Path(out_dir).resolve()
-    _check_target(target)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    temp = Path(tempfile.mkdtemp(prefix=f".{target.name}.tmp-", dir=target.parent))
     written: list[str] = []
-    try:
+    with atomic_folder(out_dir) as temp:
         result.groups.to_csv(temp / "groups.csv", index=False, float_format="%.6g")
         result.families.to_csv(temp / "families.csv", index=False, float_format="%.6g")
         written += ["groups.csv", "families.csv"]
@@ -879,18 +872,6 @@ def write_groups(
         (temp / "summary.json").write_text(json.dumps(_clean(summary), indent=2, ensure_ascii=False) + "\n",
                                            encoding="utf-8")
         written.append("summary.json")
-        os.chmod(temp, 0o755)
-        if target.exists():
-            old = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
-            old.rmdir()
-            target.rename(old)
-            temp.rename(target)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            temp.rename(target)
-    except BaseException:
-        shutil.rmtree(temp, ignore_errors=True)
-        raise
     return written
 
 

@@ -26,6 +26,8 @@ import os
 import re
 import shutil
 import tempfile
+from collections.abc import Iterator
+from contextlib import contextmanager
 from datetime import UTC, datetime
 from importlib import metadata
 from pathlib import Path
@@ -426,6 +428,42 @@ def _check_target(out_dir: Path) -> None:
         )
 
 
+@contextmanager
+def atomic_folder(out_dir: str | Path) -> Iterator[Path]:
+    """Write a results folder whole or not at all.
+
+    Yields a temporary folder beside ``out_dir``; when the block ends normally the folder is moved into place
+    (an earlier rqnet result there is replaced, and put back if the move fails); when the block raises, the
+    temporary folder is removed and ``out_dir`` is left as it was.
+
+    Raises
+    ------
+    OutputError
+        When ``out_dir`` exists and holds files rqnet did not write.
+    """
+    target = Path(out_dir).resolve()
+    _check_target(target)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    temp = Path(tempfile.mkdtemp(prefix=f".{target.name}.tmp-", dir=target.parent))
+    try:
+        yield temp
+        os.chmod(temp, 0o755)
+        if target.exists():
+            old = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
+            old.rmdir()
+            target.rename(old)
+            try:
+                temp.rename(target)
+            except BaseException:
+                old.rename(target)  # put the earlier results back
+                raise
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            temp.rename(target)
+    except BaseException:
+        shutil.rmtree(temp, ignore_errors=True)
+        raise
+
 def write_outputs(
     result: PlanResult, out_dir: str | Path, *, case_name: str = "", case_path: str = "", plots: bool = True
 ) -> list[str]:
@@ -452,12 +490,8 @@ def write_outputs(
     OutputError
         When ``out_dir`` exists and holds files rqnet did not write.
     """
-    target = Path(out_dir).resolve()
-    _check_target(target)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    temp = Path(tempfile.mkdtemp(prefix=f".{target.name}.tmp-", dir=target.parent))
     written: list[str] = []
-    try:
+    with atomic_folder(out_dir) as temp:
         frame = _csv_frame(result.policies)
         text = _text_frame(_with_current(frame, result.current))
         text.to_csv(temp / "policies.csv", index=False)
@@ -489,20 +523,4 @@ def write_outputs(
         written.append("summary.json")
         if plots and len(result.policies):
             written += _plots(result, temp)
-        os.chmod(temp, 0o755)
-        if target.exists():
-            old = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
-            old.rmdir()
-            target.rename(old)
-            try:
-                temp.rename(target)
-            except BaseException:
-                old.rename(target)  # put the earlier results back
-                raise
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            temp.rename(target)
-    except BaseException:
-        shutil.rmtree(temp, ignore_errors=True)
-        raise
     return written

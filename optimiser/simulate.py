@@ -29,10 +29,7 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
-import shutil
 import sys
-import tempfile
 import time
 import warnings
 from collections.abc import Callable
@@ -1291,15 +1288,13 @@ def write_simulation(outcome: SimulationOutcome, out_dir: str | Path, *, case_na
     ----------
     None (file layout of this project).
     """
-    from optimiser.report import TOOL, _check_target, _clean, tool_version
+    from optimiser.report import TOOL, _check_target, _clean, atomic_folder, tool_version
 
     target = Path(out_dir).resolve()
     _check_target(target)
     _check_not_other_command(target)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    temp = Path(tempfile.mkdtemp(prefix=f".{target.name}.tmp-", dir=target.parent))
     written: list[str] = []
-    try:
+    with atomic_folder(target) as temp:
         outcome.table.to_csv(temp / "simulation.csv", index=False, float_format="%.6g")
         written.append("simulation.csv")
         if len(outcome.traces):
@@ -1323,18 +1318,6 @@ def write_simulation(outcome: SimulationOutcome, out_dir: str | Path, *, case_na
         written.append("summary.json")
         if plots and len(outcome.traces):
             written += _plot_traces(outcome.traces, temp)
-        os.chmod(temp, 0o755)
-        if target.exists():
-            old = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
-            old.rmdir()
-            target.rename(old)
-            temp.rename(target)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            temp.rename(target)
-    except BaseException:
-        shutil.rmtree(temp, ignore_errors=True)
-        raise
     return written
 
 
