@@ -1274,7 +1274,9 @@ class TwoLevelResult:
 
     Store fields ``(n, m)``: ``store_policy`` (a ``SitePolicy`` flattened over the active stores, in row-major
     order of ``store_active``), ``store_ltd_mean``, ``store_ltd_sd``, ``store_distribution`` and
-    ``store_reorder_point``/``store_order_quantity``. Warehouse fields ``(n,)``. ``mean_delay``/``var_delay``
+    ``store_reorder_point``/``store_order_quantity``, ``store_delay`` (mean wait of a store's units at the
+    warehouse, days), ``store_method`` (0 the three-point delay mixture, 1 the unit-level backlog evaluation
+    of :mod:`models.backlog`). Warehouse fields ``(n,)``. ``mean_delay``/``var_delay``
     in days. ``network_cost`` per item per year. ``iterations``/``converged`` of the reorder-point search.
     """
 
@@ -1302,6 +1304,8 @@ class TwoLevelResult:
     iterations: np.ndarray
     converged: np.ndarray
     demand_method: np.ndarray
+    store_delay: np.ndarray
+    store_method: np.ndarray
 
 
 _NONNEGATIVE = ("mean", "sd", "lead", "lead_sd", "order_cost", "holding_cost", "backorder_cost", "own_mean",
@@ -1462,6 +1466,8 @@ def _assemble(inp, demand, r0, q0, state, ew, vw, rows, mean, sd, codes, pol, it
         iterations=iterations,
         converged=converged,
         demand_method=demand.method,
+        store_delay=grid(ew[rows]),
+        store_method=np.where(act, 0, -1).astype(np.int8),
     )
 
 
@@ -1665,6 +1671,7 @@ def evaluate_two_level(
     warehouse_order_quantity: np.ndarray,
     *,
     demand: WarehouseDemand | None = None,
+    store_method: str = "auto",
 ) -> TwoLevelResult:
     """Evaluate given ``(R, Q)`` at a warehouse and its stores, per item (METRIC-type, batch ordering).
 
@@ -1673,6 +1680,11 @@ def evaluate_two_level(
     inp : TwoLevelInputs
     store_reorder_point, store_order_quantity : ndarray, shape (n, m)
     warehouse_reorder_point, warehouse_order_quantity : ndarray, shape (n,)
+    store_method : {"auto", "backlog", "moments"}
+        Store figures from the units each store has unshipped at the warehouse (:mod:`models.backlog`;
+        items with count demand at every store and a constant warehouse lead time) or from the three-point
+        delay mixture. ``"auto"``: the unit-level figures where they apply, for up to
+        ``models.backlog.AUTO_MAX_STORE_ITEMS`` store-items per call.
 
     Returns
     -------
@@ -1698,9 +1710,15 @@ def evaluate_two_level(
     sq = np.asarray(store_order_quantity, dtype=float)
     if demand is None:  # (optional argument: the same demand already built by the caller for these Q)
         demand = _store_order_demand(inp, sq)
-    r0 = np.asarray(warehouse_reorder_point, dtype=float)
     q0 = np.asarray(warehouse_order_quantity, dtype=float)
     demand = _lattice_q0(demand, q0)
+    res = _evaluate_mixture(inp, store_reorder_point, sq, warehouse_reorder_point, q0, demand)
+    return _apply_backlog(inp, demand, res, sq, optimise=False, method=store_method)
+
+
+def _evaluate_mixture(inp, store_reorder_point, sq, warehouse_reorder_point, q0, demand) -> TwoLevelResult:
+    """The moment model: stores over the three-point delay mixture."""
+    r0 = np.asarray(warehouse_reorder_point, dtype=float)
     state = warehouse_moments(demand, r0, q0)
     ew, vw = delay_moments(state, demand)
     rows, mean, sd, codes, pol = _evaluate_stores(
@@ -1722,6 +1740,151 @@ def evaluate_two_level(
         pol,
         np.zeros(n, dtype=np.int64),
         np.ones(n, dtype=bool),
+    )
+
+
+def _golden_integers(f, a: int, b: int) -> int:
+    """Least ``f`` over the integers ``a .. b`` (unimodal search, memoised by the caller)."""
+    while b - a > 3:
+        c = a + int(round((b - a) * 0.381966))
+        d = max(a + int(round((b - a) * 0.618034)), c + 1)
+        if f(c) <= f(d):
+            b = d
+        else:
+            a = c
+    return min(range(a, b + 1), key=f)
+
+
+def _apply_backlog(inp, demand, res, store_q, *, optimise: bool, method: str = "auto"):
+    """Unit-level store figures (:mod:`models.backlog`) for the items they apply to.
+
+    With ``optimise`` the warehouse reorder point is searched again (golden section over the lattice within
+    ``SEARCH_SDS`` sd of the moment model's choice, which is also a candidate) with each store's reorder point
+    chosen by the unit-level figures (least cost, or the least meeting its fill-rate target; in the
+    cycle-service mode the stores keep the moment model's reorder points and only the figures change).
+    """
+    from dataclasses import replace
+
+    from models import backlog as bl
+
+    if method not in ("auto", "backlog", "moments"):
+        raise ValueError(f"store_method must be 'auto', 'backlog' or 'moments'; found {method!r}")
+    if method == "moments":
+        return res
+    n, m = inp.store_mean.shape
+    act = inp.store_active
+    q0 = np.asarray(res.warehouse_order_quantity, dtype=float)
+    own_count = np.asarray(inp.warehouse_count, dtype=bool) | (inp.warehouse_own_mean == 0)
+    ok = bl.eligible_items(
+        inp.store_count, act, inp.store_mean, store_q, inp.warehouse_lead, inp.warehouse_lead_sd, q0,
+        inp.warehouse_own_mean, own_count, demand.step,
+    )
+    if method == "auto" and int(act[ok].sum()) > bl.AUTO_MAX_STORE_ITEMS:
+        return res
+    items = np.flatnonzero(ok)
+    if items.size == 0:
+        return res
+    dpy = inp.days_per_year
+    sd0 = np.sqrt(np.maximum(demand.var, 0.0))
+    r0_new = np.asarray(res.warehouse_reorder_point, dtype=float).copy()
+    r_new = np.asarray(res.store_reorder_point, dtype=float).copy()
+    found = {}
+    for it in items:
+        cols = np.flatnonzero(act[it] & (inp.store_mean[it] > 0))
+        lam = inp.store_mean[it, cols]
+        vr = inp.store_sd[it, cols] ** 2
+        q = np.rint(store_q[it, cols]).astype(np.int64)
+        g = int(demand.step[it])
+        q0i = int(round(q0[it]))
+        r0i = int(round(r0_new[it]))
+        own = float(inp.warehouse_own_mean[it])
+        transit = [
+            bl._transit_pmf(lam[k], vr[k], inp.store_lead[it, c], inp.store_lead_sd[it, c])
+            for k, c in enumerate(cols)
+        ]
+        kw = dict(
+            annual=lam * dpy,
+            order_cost=inp.store_order_cost[it, cols],
+            holding_cost=inp.store_holding_cost[it, cols],
+            backorder_cost=inp.store_backorder_cost[it, cols],
+            basis=inp.backorder_basis,
+        )
+        search = optimise and inp.mode != "cycle_service"
+        span = max(int(np.ceil(bl.SEARCH_SDS * sd0[it] / g)), 2) * g if search else 0
+        lo = r0i - span
+        tab_kw = dict(own_rate=own, own_var_rate=float(inp.warehouse_own_sd[it]) ** 2, step=g)
+        tables = bl.backlog_tables(
+            lam, vr, q, float(inp.warehouse_lead[it]), lowest_reorder_point=lo, **tab_kw
+        )
+        if tables.width > bl.MAX_WINDOW or int((tables.horizon * q).sum()) > bl.MAX_ITEM_WORK:
+            continue
+        if not search:
+            st = bl.item_stores(tables, transit, r0i, q0i, reorder_point=r_new[it, cols], **kw)
+        else:
+            sub_inp, sub_dem = _take_inputs(inp, np.array([it])), _take_demand(demand, np.array([it]))
+            target = inp.store_target[it, cols] if inp.mode == "fill_rate" else None
+            cache = {}
+
+            def cost(t, r0i=r0i, lo=lo, g=g, q0i=q0i, sub_inp=sub_inp, sub_dem=sub_dem, tables=tables,
+                     transit=transit, kw=kw, target=target, cache=cache):
+                if t not in cache:
+                    r = lo + g * t
+                    st = bl.item_stores(tables, transit, r, q0i, target=target, **kw)
+                    state = warehouse_moments(sub_dem, np.array([float(r)]), np.array([float(q0i)]))
+                    o, h, b, _ = _warehouse_rows(sub_inp, sub_dem, state, np.array([float(q0i)]))
+                    cache[t] = (float(o[0] + h[0] + b[0]) + float(st.cost.sum()), st)
+                return cache[t][0]
+
+            t_best = _golden_integers(cost, 0, 2 * span // g)
+            if cost(span // g) <= cost(t_best):  # the moment model's choice
+                t_best = span // g
+            st = cache[t_best][1]
+        r0_new[it] = st.warehouse_reorder_point
+        r_new[it, cols] = st.reorder_point
+        found[it] = (cols, st, lam)
+    if not found:
+        return res
+    out = _evaluate_mixture(inp, r_new, store_q, r0_new, q0, demand)
+    # overwrite the store figures of the items evaluated unit by unit
+    pos = np.full((n, m), -1, dtype=np.int64)
+    pos[act] = np.arange(int(act.sum()))
+    pol = out.store_policy
+    fields = {f: np.array(getattr(pol, f), dtype=float) for f in (
+        "fill_rate", "expected_backorders", "expected_on_hand", "safety_stock", "z", "safety_stock_cost",
+        "backorder_cost", "total_cost")}
+    ltd_mean = out.store_ltd_mean.copy()
+    delay = out.store_delay.copy()
+    method_grid = out.store_method.copy()
+    for it, (cols, st, lam) in found.items():
+        p = pos[it, cols]
+        h = inp.store_holding_cost[it, cols]
+        mean = lam * inp.store_lead[it, cols] + st.mean_unshipped
+        sd = out.store_ltd_sd[it, cols]
+        fields["fill_rate"][p] = st.fill_rate
+        fields["expected_backorders"][p] = st.backorders
+        fields["expected_on_hand"][p] = st.on_hand
+        fields["safety_stock"][p] = st.reorder_point - mean
+        fields["z"][p] = np.where(sd > 0, (st.reorder_point - mean) / np.where(sd > 0, sd, 1.0), 0.0)
+        fields["safety_stock_cost"][p] = h * st.on_hand - np.asarray(pol.cycle_stock_cost, dtype=float)[p]
+        b = inp.store_backorder_cost[it, cols]
+        fields["backorder_cost"][p] = b * (
+            st.backorders if inp.backorder_basis == "per_unit_year" else lam * dpy * (1.0 - st.fill_rate)
+        )
+        fields["total_cost"][p] = st.cost
+        ltd_mean[it, cols] = mean
+        delay[it, cols] = st.mean_unshipped / lam
+        method_grid[it, cols] = 1
+    # notes, iterations and convergence stay those of the policy search
+    keep = {f: getattr(res.store_policy, f) for f in ("note", "iterations", "converged")}
+    pol = replace(pol, **fields, **keep)
+    rows = np.nonzero(act)[0]
+    store_cost = _per_item(rows, fields["total_cost"], n)
+    network = (
+        out.warehouse_ordering_cost + out.warehouse_holding_cost + out.warehouse_backorder_cost + store_cost
+    )
+    return replace(
+        out, store_policy=pol, store_ltd_mean=ltd_mean, store_delay=delay, store_method=method_grid,
+        store_cost=store_cost, network_cost=network, iterations=res.iterations, converged=res.converged,
     )
 
 
@@ -1826,12 +1989,17 @@ def _concat_results(parts: list[TwoLevelResult]) -> TwoLevelResult:
 
 
 def _optimise_chunk(args):
-    inp, points, rounds = args
-    return optimise_two_level(inp, points=points, rounds=rounds, workers=1)
+    inp, points, rounds, store_method = args
+    return optimise_two_level(inp, points=points, rounds=rounds, workers=1, store_method=store_method)
 
 
 def optimise_two_level(
-    inp: TwoLevelInputs, *, points: int = SEARCH_POINTS, rounds: int = SEARCH_ROUNDS, workers: int = 1
+    inp: TwoLevelInputs,
+    *,
+    points: int = SEARCH_POINTS,
+    rounds: int = SEARCH_ROUNDS,
+    workers: int = 1,
+    store_method: str = "auto",
 ) -> tuple[TwoLevelResult, TwoLevelResult]:
     """Network-optimal warehouse reorder point with the stores re-optimised for each candidate.
 
@@ -1878,11 +2046,14 @@ def optimise_two_level(
 
         chunks = np.array_split(np.arange(n), workers)
         with ProcessPoolExecutor(max_workers=workers) as pool:
-            parts = list(pool.map(_optimise_chunk, [(_take_inputs(inp, c), points, rounds) for c in chunks]))
+            jobs = [(_take_inputs(inp, c), points, rounds, store_method) for c in chunks]
+            parts = list(pool.map(_optimise_chunk, jobs))
         return _concat_results([p[0] for p in parts]), _concat_results([p[1] for p in parts])
     store_r, store_q, r0_seed, q0, demand = single_site_seed(inp)
     demand = _lattice_q0(demand, q0)
-    seed_eval = evaluate_two_level(inp, store_r, store_q, r0_seed, q0, demand=demand)
+    seed_eval = evaluate_two_level(
+        inp, store_r, store_q, r0_seed, q0, demand=demand, store_method=store_method
+    )
     tables = discrete_tables(demand)
     sd0 = np.sqrt(np.maximum(demand.var, 0.0))
     disc = demand.discrete
@@ -1932,6 +2103,7 @@ def optimise_two_level(
         inp, ew, vw, store_q, state.wait_probability, refine=True, mw=state.max_wait
     )
     result = _assemble(inp, demand, best_r, q0, state, ew, vw, rows, mean, sd, codes, pol, its, done)
+    result = _apply_backlog(inp, demand, result, store_q, optimise=True, method=store_method)
     return result, seed_eval
 
 

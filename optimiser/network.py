@@ -350,8 +350,7 @@ def _frame_two_level(
             "note": np.zeros(n, dtype=np.int64),
         }
     )
-    item_of_store = np.nonzero(act)[0]
-    delay = res.mean_delay[item_of_store]
+    delay = res.store_delay[act]
     stores = pl._policy_frame(
         table.iloc[st_rows], pol, inp.store_lead[act] + delay, res.store_ltd_mean[act], res.store_ltd_sd[act]
     ).assign(expected_delay_days=delay)
