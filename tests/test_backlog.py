@@ -1,11 +1,12 @@
 """Checks of models.backlog: store figures from the units each store has unshipped at the warehouse.
 
 Sources: Graves (1985), "A multi-echelon inventory model for a repairable item with one-for-one
-replenishment", Management Science 31(10) - for one-for-one Poisson stores the warehouse backorders are the last
-``B0`` units and each belongs to store ``i`` independently with probability ``lambda_i / lambda0`` (computed here with scipy,
-independently of the project's code); Axsäter (1993), "Exact and approximate evaluation of batch-ordering
-policies for two-level inventory systems", Operations Research 41(4) - published exact costs of 16 policies;
-Little's law (common practice) for the mean units owed; scipy.stats as the reference for distributions.
+replenishment", Management Science 31(10) - for one-for-one Poisson stores the warehouse backorders are the
+last ``B0`` units and each belongs to store ``i`` independently with probability ``lambda_i / lambda0``
+(computed here with scipy, independently of the project's code); Axsäter (1993), "Exact and approximate
+evaluation of batch-ordering policies for two-level inventory systems", Operations Research 41(4) - published
+exact costs of 16 policies; Little's law (common practice) for the mean units owed; scipy.stats as the
+reference for distributions.
 """
 
 from __future__ import annotations
