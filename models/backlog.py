@@ -57,6 +57,8 @@ from models.echelon import SUPPORT_SDS, TAIL_TOL, count_pmf
 
 __all__ = [
     "AGE_CELLS",
+    "LEAD_POINTS",
+    "lead_points",
     "BacklogTables",
     "backlog_tables",
     "store_shortfall",
@@ -142,15 +144,14 @@ def _batched(dem: np.ndarray, q: int) -> tuple[np.ndarray, np.ndarray]:
 
 
 @dataclass(frozen=True)
-class BacklogTables:
-    """Per-item tables that do not depend on ``R0`` (from :func:`backlog_tables`).
+class _LeadTables:
+    """Tables for one warehouse lead time ``L0``.
 
-    ``before`` (m, AGE_CELLS, P): strided prefix sums of ``P(W >= x)`` for the windows before an order;
-    ``after`` (m, AGE_CELLS, P) or None: strided prefix sums of the others' cdf for windows after an order;
-    ``age`` list of (N_i, AGE_CELLS) cell probabilities of the order ages below ``L0``; ``late`` list of
-    (N_i, AGE_CELLS) cell probabilities of the time from an order to ``t - L0``; ``recent`` list of (N_i,)
-    pmfs of the store's demand over ``L0``; ``q`` (m,) int; ``step`` int; ``width`` P; ``r0_min`` the lowest
-    ``R0`` the ``after`` tables cover.
+    ``before`` (m, cells, P): strided prefix sums of ``P(W >= x)`` for the windows before an order;
+    ``after`` (m, cells, P) or None: strided prefix sums of the others' cdf for windows after an order;
+    ``age`` list of (N_i, cells) cell probabilities of the order ages below ``L0``; ``late`` list of
+    (N_i, cells) cell probabilities of the time from an order to ``t - L0``; ``recent`` list of (N_i,) pmfs of
+    the store's demand over ``L0``.
     """
 
     before: np.ndarray
@@ -158,11 +159,72 @@ class BacklogTables:
     age: list
     late: list
     recent: list
+    width: int
+    horizon: np.ndarray
+
+
+@dataclass(frozen=True)
+class BacklogTables:
+    """Per-item tables that do not depend on ``R0`` (from :func:`backlog_tables`).
+
+    ``nodes``: one :class:`_LeadTables` per warehouse lead-time point, ``weights`` their probabilities (one
+    node of weight 1 for a fixed lead time); ``q`` (m,) int; ``step`` int; ``width`` the widest window support;
+    ``r0_min`` the lowest ``R0`` served; ``horizon`` (m,) the longest order-age count per store.
+    """
+
+    nodes: tuple
+    weights: np.ndarray
     q: np.ndarray
     step: int
     width: int
     r0_min: int
     horizon: np.ndarray
+
+
+#: Points of the warehouse lead-time distribution (gamma; generalised Gauss-Laguerre) when it is random.
+LEAD_POINTS = 5
+
+
+def lead_points(mean: float, sd: float, points: int = LEAD_POINTS) -> tuple[np.ndarray, np.ndarray]:
+    """Nodes and weights for expectations over a gamma lead time with the given mean and sd.
+
+    Parameters
+    ----------
+    mean, sd : float
+        Lead-time mean (> 0) and standard deviation (>= 0).
+    points : int
+        Number of nodes.
+
+    Returns
+    -------
+    nodes, weights : ndarray
+
+    Examples
+    --------
+    >>> x, w = lead_points(10.0, 3.0)
+    >>> round(float(w @ x), 9), round(float(w @ x**2 - (w @ x) ** 2), 9)
+    (10.0, 9.0)
+
+    Notes
+    -----
+    With shape ``k = (mean / sd)**2`` and scale ``theta = sd**2 / mean``, ``E f(L) = sum_i w_i f(theta x_i)``
+    where ``x_i, w_i`` are the generalised Gauss-Laguerre nodes and weights for ``alpha = k - 1``, normalised
+    (exact for polynomials of degree up to ``2 points - 1``). ``sd = 0``: the single node ``mean``.
+
+    References
+    ----------
+    Abramowitz, M. & Stegun, I. A. (1964). Handbook of Mathematical Functions, 25.4.45. National Bureau of
+    Standards.
+    """
+    if sd <= 1e-9 * max(mean, 1.0):
+        return np.array([float(mean)]), np.array([1.0])
+    from scipy import special as sp
+
+    k = (mean / sd) ** 2
+    theta = sd * sd / mean
+    x, w = sp.roots_genlaguerre(points, k - 1.0)
+    w = w / w.sum()
+    return theta * x, w
 
 
 def backlog_tables(
@@ -171,6 +233,7 @@ def backlog_tables(
     order_quantity: np.ndarray,
     warehouse_lead: float,
     *,
+    warehouse_lead_sd: float = 0.0,
     own_rate: float = 0.0,
     own_var_rate: float = 0.0,
     step: int = 1,
@@ -186,7 +249,10 @@ def backlog_tables(
     order_quantity : ndarray of int, shape (m,)
         Store batches ``Q_i >= 1``.
     warehouse_lead : float
-        Constant warehouse lead time ``L0 > 0``.
+        Warehouse lead time ``L0 > 0`` (mean).
+    warehouse_lead_sd : float
+        Its standard deviation: the figures are averaged over :func:`lead_points` (each lead time taken for
+        the whole backlog at once; exact only for a fixed lead time).
     own_rate, own_var_rate : float
         The warehouse's own customer demand (served first come first served with the store orders).
     step : int
@@ -203,8 +269,8 @@ def backlog_tables(
     Examples
     --------
     >>> t = backlog_tables(np.array([0.5, 0.5]), np.array([0.5, 0.5]), np.array([1, 1]), 2.0)
-    >>> t.before.shape[:2] == (2, AGE_CELLS), t.after is None
-    (True, True)
+    >>> t.nodes[0].before.shape[:2] == (2, AGE_CELLS), t.nodes[0].after is None, t.weights.tolist()
+    (True, True, [1.0])
 
     Notes
     -----
@@ -216,6 +282,21 @@ def backlog_tables(
     Kiesmüller, G. P., de Kok, A. G., Smits, S. R. & van Laarhoven, P. J. M. (2004). Evaluation of divergent
     N-echelon (s, nQ)-policies under compound renewal demand. OR Spectrum 26(4), 547-577.
     """
+    nodes, weights = lead_points(float(warehouse_lead), float(warehouse_lead_sd))
+    parts = tuple(
+        _lead_tables(rate, var_rate, order_quantity, float(l0), own_rate, own_var_rate, step,
+                     lowest_reorder_point, cells)
+        for l0 in nodes
+    )
+    return BacklogTables(
+        parts, weights, np.asarray(order_quantity, dtype=np.int64), int(step), max(p.width for p in parts),
+        int(min(lowest_reorder_point, 0)), np.max([p.horizon for p in parts], axis=0),
+    )
+
+
+def _lead_tables(rate, var_rate, order_quantity, warehouse_lead, own_rate, own_var_rate, step,
+                 lowest_reorder_point, cells) -> _LeadTables:
+    """:func:`backlog_tables` for one fixed warehouse lead time."""
     lam = np.asarray(rate, dtype=float)
     vr = np.maximum(np.asarray(var_rate, dtype=float), lam)
     q = np.asarray(order_quantity, dtype=np.int64)
@@ -301,7 +382,28 @@ def backlog_tables(
         else:
             late.append(None)
             recent.append(None)
-    return BacklogTables(before, after, age, late, recent, q, g, width, r0_min, horizon)
+    return _LeadTables(before, after, age, late, recent, width, horizon)
+
+
+def _unshipped_by_age(node: _LeadTables, i: int, r0: int, mpos: int, g: int, q: int, j: np.ndarray):
+    """``H(n, j)`` of store ``i`` for one lead time: the chance that the unit with ``j - 1`` units ahead of it
+    in an order ``n + 1`` store demands old is unshipped (rows ``n = 0 .. N - 1``)."""
+    # G_before(cell, j) = (1/M) sum_k P(W >= R0 + g k - j + 1)
+    gb = _lattice_mean(node.before[i], (r0 - j + 1)[None, :], mpos, g, 1.0, 0.0)  # (cells, Q)
+    h = node.age[i] @ gb  # (N, Q)
+    if r0 + g <= -1 and node.after is not None:
+        n_max = h.shape[0]
+        late = node.late[i]  # (N, cells)
+        cnt = np.arange(n_max) // q
+        k_mat = np.zeros((n_max, q))
+        for c in np.unique(cnt):
+            # G_after(cell, c, j) = (1/M) sum_k P(O <= j - Q - 1 - Q c - R0 - g k)
+            z0 = j - q - 1 - q * int(c) - r0 - g * (mpos + 1)  # ascending form: z0 + g k', k' = 1..M
+            ga = _lattice_mean(node.after[i], z0[None, :], mpos, g, 0.0, 1.0)  # (cells, Q)
+            rows = cnt == c
+            k_mat[rows] = late[rows] @ ga
+        h = h + signal.fftconvolve(node.recent[i][:, None], k_mat, axes=0)[:n_max]
+    return h
 
 
 def store_shortfall(tables: BacklogTables, reorder_point: int, order_quantity: int) -> list:
@@ -341,27 +443,14 @@ def store_shortfall(tables: BacklogTables, reorder_point: int, order_quantity: i
     mpos = max(int(round(order_quantity / g)), 1)
     if r0 < tables.r0_min:
         raise ValueError(f"reorder_point {r0} is below the tables' lowest {tables.r0_min}")
-    neg = r0 + g <= -1 and tables.after is not None
     out = []
     for i, q in enumerate(tables.q):
         q = int(q)
         j = np.arange(1, q + 1)
-        # G_before(cell, j) = (1/M) sum_k P(W >= R0 + g k - j + 1)
-        gb = _lattice_mean(tables.before[i], (r0 - j + 1)[None, :], mpos, g, 1.0, 0.0)  # (cells, Q)
-        h = tables.age[i] @ gb  # (N, Q)
-        if neg:
-            n_max = h.shape[0]
-            late = tables.late[i]  # (N, cells)
-            d = np.arange(n_max)
-            cnt = d // q
-            k_mat = np.zeros((n_max, q))
-            for c in np.unique(cnt):
-                # G_after(cell, c, j) = (1/M) sum_k P(O <= j - Q - 1 - Q c - R0 - g k)
-                z0 = j - q - 1 - q * int(c) - r0 - g * (mpos + 1)  # ascending form: z0 + g k', k' = 1..M
-                ga = _lattice_mean(tables.after[i], z0[None, :], mpos, g, 0.0, 1.0)  # (cells, Q)
-                rows = cnt == c
-                k_mat[rows] = late[rows] @ ga
-            h = h + signal.fftconvolve(tables.recent[i][:, None], k_mat, axes=0)[:n_max]
+        h = np.zeros((int(tables.horizon[i]), q))
+        for node, weight in zip(tables.nodes, tables.weights, strict=True):
+            hn = _unshipped_by_age(node, i, r0, mpos, g, q, j)
+            h[: hn.shape[0]] += weight * hn
         h = np.clip(h, 0.0, 1.0)
         n_max = h.shape[0]
         # P(Z >= z) for z = 1 - Q .. n_max: mean over j of H(z + j - 1, j) (H = 1 below n = 0, 0 past n_max)
@@ -498,7 +587,7 @@ def eligible_items(
     Notes
     -----
     Every store with demand has count demand and a whole batch ``Q_i >= 1``; the warehouse lead time is
-    constant and positive; ``Q0`` is a whole multiple of the lattice step; the warehouse's own customers, if
+    positive (a random one is averaged over :func:`lead_points`); ``Q0`` is a whole multiple of the lattice step; the warehouse's own customers, if
     any, have count demand.
     """
     flowing = active & (rate > 0)
@@ -506,7 +595,7 @@ def eligible_items(
     whole = np.isfinite(q) & (q >= 1) & (np.abs(q - np.rint(q)) < 1e-9)
     q0 = np.asarray(warehouse_order_quantity, dtype=float)
     ok = np.all(~flowing | (count & whole), axis=1) & flowing.any(axis=1)
-    ok &= (warehouse_lead > 0) & (warehouse_lead_sd == 0)
+    ok &= (warehouse_lead > 0) & np.isfinite(warehouse_lead_sd)
     ok &= np.isfinite(q0) & (q0 >= 1) & (np.abs(np.mod(q0, step)) < 1e-9)
     ok &= (own_rate == 0) | own_count
     return ok

@@ -1812,7 +1812,10 @@ def _apply_backlog(inp, demand, res, store_q, *, optimise: bool, method: str = "
         search = optimise and inp.mode != "cycle_service"
         span = max(int(np.ceil(bl.SEARCH_SDS * sd0[it] / g)), 2) * g if search else 0
         lo = r0i - span
-        tab_kw = dict(own_rate=own, own_var_rate=float(inp.warehouse_own_sd[it]) ** 2, step=g)
+        tab_kw = dict(
+            own_rate=own, own_var_rate=float(inp.warehouse_own_sd[it]) ** 2, step=g,
+            warehouse_lead_sd=float(inp.warehouse_lead_sd[it]),
+        )
         tables = bl.backlog_tables(
             lam, vr, q, float(inp.warehouse_lead[it]), lowest_reorder_point=lo, **tab_kw
         )
