@@ -53,6 +53,7 @@ import numpy as np
 from scipy import fft as sfft
 from scipy import signal
 
+from models.demand import LEAD_POINTS, lead_points
 from models.echelon import SUPPORT_SDS, TAIL_TOL, count_pmf
 
 __all__ = [
@@ -167,9 +168,9 @@ class _LeadTables:
 class BacklogTables:
     """Per-item tables that do not depend on ``R0`` (from :func:`backlog_tables`).
 
-    ``nodes``: one :class:`_LeadTables` per warehouse lead-time point, ``weights`` their probabilities (one
-    node of weight 1 for a fixed lead time); ``q`` (m,) int; ``step`` int; ``width`` the widest window support;
-    ``r0_min`` the lowest ``R0`` served; ``horizon`` (m,) the longest order-age count per store.
+    ``nodes``: one :class:`_LeadTables` per warehouse lead-time point, ``weights`` their probabilities
+    (one node of weight 1 for a fixed lead time); ``q`` (m,) int; ``step`` int; ``width`` the widest window
+    support; ``r0_min`` the lowest ``R0`` served; ``horizon`` (m,) the longest order-age count per store.
     """
 
     nodes: tuple
@@ -179,52 +180,6 @@ class BacklogTables:
     width: int
     r0_min: int
     horizon: np.ndarray
-
-
-#: Points of the warehouse lead-time distribution (gamma; generalised Gauss-Laguerre) when it is random.
-LEAD_POINTS = 5
-
-
-def lead_points(mean: float, sd: float, points: int = LEAD_POINTS) -> tuple[np.ndarray, np.ndarray]:
-    """Nodes and weights for expectations over a gamma lead time with the given mean and sd.
-
-    Parameters
-    ----------
-    mean, sd : float
-        Lead-time mean (> 0) and standard deviation (>= 0).
-    points : int
-        Number of nodes.
-
-    Returns
-    -------
-    nodes, weights : ndarray
-
-    Examples
-    --------
-    >>> x, w = lead_points(10.0, 3.0)
-    >>> round(float(w @ x), 9), round(float(w @ x**2 - (w @ x) ** 2), 9)
-    (10.0, 9.0)
-
-    Notes
-    -----
-    With shape ``k = (mean / sd)**2`` and scale ``theta = sd**2 / mean``, ``E f(L) = sum_i w_i f(theta x_i)``
-    where ``x_i, w_i`` are the generalised Gauss-Laguerre nodes and weights for ``alpha = k - 1``, normalised
-    (exact for polynomials of degree up to ``2 points - 1``). ``sd = 0``: the single node ``mean``.
-
-    References
-    ----------
-    Abramowitz, M. & Stegun, I. A. (1964). Handbook of Mathematical Functions, 25.4.45. National Bureau of
-    Standards.
-    """
-    if sd <= 1e-9 * max(mean, 1.0):
-        return np.array([float(mean)]), np.array([1.0])
-    from scipy import special as sp
-
-    k = (mean / sd) ** 2
-    theta = sd * sd / mean
-    x, w = sp.roots_genlaguerre(points, k - 1.0)
-    w = w / w.sum()
-    return theta * x, w
 
 
 def backlog_tables(
@@ -251,8 +206,8 @@ def backlog_tables(
     warehouse_lead : float
         Warehouse lead time ``L0 > 0`` (mean).
     warehouse_lead_sd : float
-        Its standard deviation: the figures are averaged over :func:`lead_points` (each lead time taken for
-        the whole backlog at once; exact only for a fixed lead time).
+        Its standard deviation: the figures are averaged over ``models.demand.lead_points`` (each lead
+        time taken for the whole backlog at once; exact only for a fixed lead time).
     own_rate, own_var_rate : float
         The warehouse's own customer demand (served first come first served with the store orders).
     step : int
@@ -587,8 +542,8 @@ def eligible_items(
     Notes
     -----
     Every store with demand has count demand and a whole batch ``Q_i >= 1``; the warehouse lead time is
-    positive (a random one is averaged over :func:`lead_points`); ``Q0`` is a whole multiple of the lattice step; the warehouse's own customers, if
-    any, have count demand.
+    positive (a random one is averaged over ``models.demand.lead_points``); ``Q0`` is a whole multiple of the
+    lattice step; the warehouse's own customers, if any, have count demand.
     """
     flowing = active & (rate > 0)
     q = np.where(flowing, order_quantity, 1.0)
@@ -602,10 +557,13 @@ def eligible_items(
 
 
 def _transit_pmf(rate: float, var_rate: float, lead: float, lead_sd: float) -> np.ndarray:
+    """Pmf of a store's demand over its transit time (a random one: mixed over its gamma points)."""
     mean = rate * lead
     var = max(var_rate * lead + rate * rate * lead_sd * lead_sd, mean)
     width = int(np.ceil(mean + SUPPORT_SDS * np.sqrt(var) + max(var / max(mean, 1e-12), 1.0) * 25.0 + 2))
-    return _pmf(np.array(mean), np.array(var), width)
+    nodes, weights = lead_points(lead, lead_sd) if lead > 0 else (np.array([0.0]), np.array([1.0]))
+    width = max(width, int(np.ceil(rate * nodes.max() + SUPPORT_SDS * np.sqrt(var_rate * nodes.max()) + 30)))
+    return weights @ _pmf(rate * nodes, var_rate * nodes, width)
 
 
 @dataclass(frozen=True)

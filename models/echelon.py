@@ -35,6 +35,8 @@ import numpy as np
 from scipy import fft as sfft
 from scipy import special
 
+from models.demand import LEAD_POINTS, lead_points
+
 __all__ = [
     "TAIL_TOL",
     "SUPPORT_SDS",
@@ -304,6 +306,9 @@ class WarehouseDemand:
     ``method`` (n,) int8: 0 normal moments, 1 convolution of order streams, 2 moment-fitted count pmf.
     ``order_size`` (n,): mean size of the demand a unit arrives in (units weighted); ``own_rate`` (n,): the
     warehouse's own customer demand rate (None: none); ``lone_offset`` (n,): :func:`lone_unit_offset`.
+    ``lead_weight``, ``lead_mean``, ``lead_var`` (n, P) or None: for a random lead time, the lead-time demand
+    as a mixture over gamma lead-time points (``models.demand.lead_points``): weights, means and variances
+    (a fixed lead time: one point of weight 1); normal rows are evaluated over the mixture.
     """
 
     mean: np.ndarray
@@ -323,6 +328,9 @@ class WarehouseDemand:
     order_size: np.ndarray | None = None
     own_rate: np.ndarray | None = None
     lone_offset: np.ndarray | None = None
+    lead_weight: np.ndarray | None = None
+    lead_mean: np.ndarray | None = None
+    lead_var: np.ndarray | None = None
 
     def pmf_of(self, row: int) -> np.ndarray:
         """The pmf held for one discrete row (empty array for a normal row)."""
@@ -427,9 +435,30 @@ def warehouse_demand(
     all_count &= integral_q
     width_need = _support_width(mean, var, pad=np.where(active, store_q, 0).max(axis=1))
     discrete = all_count & (width_need <= MAX_FIT_SUPPORT)
-    exact = discrete & (lead_sd <= 0) & (width_need <= max_support)
+    exact = discrete & (width_need <= max_support)
     method = np.where(exact, 1, np.where(discrete, 2, 0)).astype(np.int8)
 
+    # a random lead time: demand over each gamma lead-time point (mixture weights per row)
+    lead_weight = lead_mean = lead_var = None
+    rand = np.flatnonzero(lead_sd > 0)
+    if rand.size:
+        npts = LEAD_POINTS
+        lead_weight = np.zeros((n, npts))
+        lead_weight[:, 0] = 1.0
+        lead_at = np.repeat(lead[:, None], npts, axis=1)
+        for r in rand:
+            x, wts = lead_points(float(lead[r]), float(lead_sd[r]), npts)
+            lead_at[r, : x.size], lead_weight[r, : x.size] = x, wts
+        lead_mean = rate[:, None] * lead_at
+        lead_var = np.zeros((n, npts))
+        for k in range(npts):
+            lk = lead_at[:, k][:, None]
+            sv = np.where(
+                active,
+                order_stream_variance(store_mean * lk, store_sd**2 * lk, np.where(active, store_q, 1.0)),
+                0.0,
+            )
+            lead_var[:, k] = sv.sum(axis=1) + own_sd**2 * lead_at[:, k]
     tail = np.zeros(n)
     bucket = np.maximum(2 ** np.ceil(np.log2(np.maximum(width_need, 1))), MIN_WIDTH).astype(np.int64)
     blocks = []
@@ -440,25 +469,24 @@ def warehouse_demand(
         for start in range(0, idx_all.size, per):
             part = np.arange(start, min(start + per, idx_all.size))
             idx = idx_all[part]
-            ex = exact[idx]
-            if np.any(ex):
-                k = idx[ex]
-                p, t = _convolve_streams(
-                    win_mean[k],
-                    win_var[k],
-                    qi[k],
-                    active[k],
-                    own_mean[k] * lead[k],
-                    own_sd[k] ** 2 * lead[k],
-                    int(w),
-                )
-                pmf[part[ex]] = p
-                tail[k] = t
-            if np.any(~ex):
-                k = idx[~ex]
-                p, t = count_pmf(mean[k], var[k], int(w))
-                pmf[part[~ex]] = p
-                tail[k] = t
+            # a random lead time: the pmf mixed over its gamma points (each point a fixed lead time)
+            for sub in (idx[lead_sd[idx] <= 0], *[np.array([r]) for r in idx[lead_sd[idx] > 0]]):
+                if sub.size == 0:
+                    continue
+                rows = np.searchsorted(idx_all, sub)
+                nodes, weights = lead_points(float(lead[sub[0]]), float(lead_sd[sub[0]]))
+                if lead_sd[sub[0]] <= 0:
+                    nodes, weights = [lead[sub]], np.ones(1)
+                acc = np.zeros((sub.size, int(w)))
+                tacc = np.zeros(sub.size)
+                for node, weight in zip(nodes, weights, strict=True):
+                    lw = np.broadcast_to(node, sub.shape)
+                    p_, t_ = _lead_pmf(sub, lw, exact, store_mean, store_sd, qi, active, own_mean, own_sd,
+                                       int(w))
+                    acc += weight * p_
+                    tacc += weight * t_
+                pmf[rows] = acc
+                tail[sub] = tacc
         keep = tail[idx_all] <= TAIL_TOL
         blocks.append((idx_all[keep], pmf[keep]))
     # a support that would drop more than TAIL_TOL falls back to the moment-matched normal
@@ -489,7 +517,34 @@ def warehouse_demand(
         lead_sd=lead_sd.copy(),
         own_rate=own_mean.copy(),
         lone_offset=lone_unit_offset(store_mean, store_q, store_count, active, rate, lead),
+        lead_weight=lead_weight,
+        lead_mean=lead_mean,
+        lead_var=lead_var,
     )
+
+
+def _lead_pmf(k, lead, exact, store_mean, store_sd, qi, active, own_mean, own_sd, width):
+    """Warehouse demand pmf of rows ``k`` over fixed lead times ``lead``: exact convolution where
+    ``exact``, else a count pmf by moments (order-stream variances at that lead time)."""
+    pmf = np.zeros((k.size, width))
+    tail = np.zeros(k.size)
+    wm = store_mean[k] * lead[:, None]
+    wv = store_sd[k] ** 2 * lead[:, None]
+    ex = exact[k]
+    if np.any(ex):
+        e = np.flatnonzero(ex)
+        p, t = _convolve_streams(wm[e], wv[e], qi[k[e]], active[k[e]], own_mean[k[e]] * lead[e],
+                                 own_sd[k[e]] ** 2 * lead[e], width)
+        pmf[e], tail[e] = p, t
+    if np.any(~ex):
+        f = np.flatnonzero(~ex)
+        act = active[k[f]]
+        sv = np.where(act, order_stream_variance(wm[f], wv[f], np.where(act, qi[k[f]], 1)), 0.0)
+        mean = wm[f].sum(axis=1) + own_mean[k[f]] * lead[f]
+        var = sv.sum(axis=1) + own_sd[k[f]] ** 2 * lead[f]
+        p, t = count_pmf(mean, var, width)
+        pmf[f], tail[f] = p, t
+    return pmf, tail
 
 
 def lone_unit_offset(
@@ -827,38 +882,21 @@ def warehouse_moments(
                 )
     c = ~d
     if np.any(c):
-        mu = demand.mean[c]
-        sd = np.maximum(np.sqrt(np.maximum(demand.var[c], 0.0)), SD_FLOOR * np.maximum(1.0, mu))
-        za = (r0[c] - mu) / sd
+        if demand.lead_weight is None:
+            _normal_state(c, demand.mean[c], demand.var[c], np.ones(int(c.sum())), r0, q0, order_size, ahead,
+                          eb, eb2, stockout, wait, own_so, own_unit, first=True)
+        else:  # a random lead time: the state mixed over its lead-time points
+            first = True
+            for k in range(demand.lead_weight.shape[1]):
+                wk = demand.lead_weight[c, k]
+                if not np.any(wk > 0):
+                    continue
+                _normal_state(c, demand.lead_mean[c, k], demand.lead_var[c, k], wk, r0, q0, order_size, ahead,
+                              eb, eb2, stockout, wait, own_so, own_unit, first=first)
+                first = False
         qq = q0[c]
-        zb = (r0[c] + qq - mu) / sd
-        a1, a2, a3 = normal_loss_moments(za)
-        b1, b2, b3 = normal_loss_moments(zb)
-        small = qq < 1e-6 * sd
+        small = qq < 1e-6 * np.maximum(np.sqrt(np.maximum(demand.var[c], 0.0)), 1e-300)
         qs = np.where(small, 1.0, qq)
-        eb[c] = np.where(small, sd * a1, sd**2 * (a2 - b2) / (2.0 * qs))
-        eb2[c] = np.where(small, sd**2 * a2, sd**3 * (a3 - b3) / (3.0 * qs))
-        # P(X > y) averaged: sd (H1(z_R) - H1(z_RQ)) / Q0
-        stockout[c] = np.where(small, special.ndtr(-za), sd * (a1 - b1) / qs)
-        sh = order_size[c]
-        wa = normal_loss_moments(za - sh / sd)[0]
-        wb = normal_loss_moments(zb - sh / sd)[0]
-        wait[c] = np.where(small, special.ndtr(-(za - sh / sd)), sd * (wa - wb) / qs)
-        own_so[c] = stockout[c]
-        # own customers (see _own_unit_backorders_discrete): positions y > 0 at y + ahead, y <= 0 at y - ahead
-        m_c = ahead[c]
-        lo_p = np.maximum(r0[c], 0.0)
-        hi_p = np.maximum(r0[c] + qq, lo_p)
-        pos_int = sd**2 * (
-            normal_loss_moments((lo_p + m_c - mu) / sd)[1] - normal_loss_moments((hi_p + m_c - mu) / sd)[1]
-        ) / 2.0
-        lo_n = np.minimum(r0[c], 0.0)
-        hi_n = np.minimum(r0[c] + qq, 0.0)
-        neg_int = (hi_n - lo_n) * (mu + m_c) - (hi_n**2 - lo_n**2) / 2.0
-        at_r = np.where(
-            r0[c] > 0, sd * normal_loss_moments((r0[c] + m_c - mu) / sd)[0], mu + m_c - r0[c]
-        )
-        own_unit[c] = np.where(small, at_r, (pos_int + neg_int) / qs)
         # inventory positions below zero: share of (R0, R0 + Q0] and mean of |y| there (times the share)
         lo_, hi_ = r0[c], np.minimum(r0[c] + qq, 0.0)
         width_ = np.maximum(hi_ - lo_, 0.0)
@@ -890,6 +928,45 @@ def warehouse_moments(
         own_stockout_probability=np.clip(own_so, 0.0, 1.0),
         own_backorders=np.clip(own_share * own_unit, 0.0, eb),
     )
+
+
+def _normal_state(c, mu, var, weight, r0, q0, order_size, ahead, eb, eb2, stockout, wait, own_so, own_unit,
+                  *, first):
+    """Normal lead-time demand ``(mu, var)`` on rows ``c``: add ``weight`` times its backorders, their second
+    moment, stock-out and wait probabilities and own-customer backorders into the arrays (set them when
+    ``first``)."""
+    sd = np.maximum(np.sqrt(np.maximum(var, 0.0)), SD_FLOOR * np.maximum(1.0, mu))
+    za = (r0[c] - mu) / sd
+    qq = q0[c]
+    zb = (r0[c] + qq - mu) / sd
+    a1, a2, a3 = normal_loss_moments(za)
+    b1, b2, b3 = normal_loss_moments(zb)
+    small = qq < 1e-6 * sd
+    qs = np.where(small, 1.0, qq)
+    vals = {}
+    vals["eb"] = np.where(small, sd * a1, sd**2 * (a2 - b2) / (2.0 * qs))
+    vals["eb2"] = np.where(small, sd**2 * a2, sd**3 * (a3 - b3) / (3.0 * qs))
+    # P(X > y) averaged: sd (H1(z_R) - H1(z_RQ)) / Q0
+    vals["so"] = np.where(small, special.ndtr(-za), sd * (a1 - b1) / qs)
+    sh = order_size[c]
+    wa = normal_loss_moments(za - sh / sd)[0]
+    wb = normal_loss_moments(zb - sh / sd)[0]
+    vals["wait"] = np.where(small, special.ndtr(-(za - sh / sd)), sd * (wa - wb) / qs)
+    # own customers (see _own_unit_backorders_discrete): positions y > 0 at y + ahead, y <= 0 at y - ahead
+    m_c = ahead[c]
+    lo_p = np.maximum(r0[c], 0.0)
+    hi_p = np.maximum(r0[c] + qq, lo_p)
+    pos_int = sd**2 * (
+        normal_loss_moments((lo_p + m_c - mu) / sd)[1] - normal_loss_moments((hi_p + m_c - mu) / sd)[1]
+    ) / 2.0
+    lo_n = np.minimum(r0[c], 0.0)
+    hi_n = np.minimum(r0[c] + qq, 0.0)
+    neg_int = (hi_n - lo_n) * (mu + m_c) - (hi_n**2 - lo_n**2) / 2.0
+    at_r = np.where(r0[c] > 0, sd * normal_loss_moments((r0[c] + m_c - mu) / sd)[0], mu + m_c - r0[c])
+    vals["own"] = np.where(small, at_r, (pos_int + neg_int) / qs)
+    for arr, key in ((eb, "eb"), (eb2, "eb2"), (stockout, "so"), (wait, "wait"), (own_so, "so"),
+                     (own_unit, "own")):
+        arr[c] = weight * vals[key] + (0.0 if first else arr[c])
 
 
 def _own_unit_backorders_discrete(loss, r0, q0, ahead, mu0):
