@@ -53,13 +53,12 @@ import numpy as np
 from scipy import fft as sfft
 from scipy import signal
 
-from models.demand import LEAD_POINTS, lead_points
+from models.demand import lead_points
 from models.echelon import SUPPORT_SDS, TAIL_TOL, count_pmf
 
 __all__ = [
     "AGE_CELLS",
-    "LEAD_POINTS",
-    "lead_points",
+    "BACKLOG_LEAD_POINTS",
     "BacklogTables",
     "backlog_tables",
     "store_shortfall",
@@ -69,6 +68,8 @@ __all__ = [
 
 #: Cells of each age integral (orders younger than ``L0``; windows after ``t - L0`` for negative ``R0``).
 AGE_CELLS = 64
+#: Lead-time points of the unit model for a random warehouse lead time (each point is a full set of tables).
+BACKLOG_LEAD_POINTS = 5
 #: Probability below which a tail (ages, backlog) is cut.
 BACKLOG_TAIL = 1e-10
 
@@ -237,7 +238,7 @@ def backlog_tables(
     Kiesmüller, G. P., de Kok, A. G., Smits, S. R. & van Laarhoven, P. J. M. (2004). Evaluation of divergent
     N-echelon (s, nQ)-policies under compound renewal demand. OR Spectrum 26(4), 547-577.
     """
-    nodes, weights = lead_points(float(warehouse_lead), float(warehouse_lead_sd))
+    nodes, weights = lead_points(float(warehouse_lead), float(warehouse_lead_sd), BACKLOG_LEAD_POINTS)
     parts = tuple(
         _lead_tables(rate, var_rate, order_quantity, float(l0), own_rate, own_var_rate, step,
                      lowest_reorder_point, cells)
@@ -561,7 +562,9 @@ def _transit_pmf(rate: float, var_rate: float, lead: float, lead_sd: float) -> n
     mean = rate * lead
     var = max(var_rate * lead + rate * rate * lead_sd * lead_sd, mean)
     width = int(np.ceil(mean + SUPPORT_SDS * np.sqrt(var) + max(var / max(mean, 1e-12), 1.0) * 25.0 + 2))
-    nodes, weights = lead_points(lead, lead_sd) if lead > 0 else (np.array([0.0]), np.array([1.0]))
+    nodes, weights = np.array([0.0]), np.array([1.0])
+    if lead > 0:
+        nodes, weights = lead_points(lead, lead_sd, BACKLOG_LEAD_POINTS)
     width = max(width, int(np.ceil(rate * nodes.max() + SUPPORT_SDS * np.sqrt(var_rate * nodes.max()) + 30)))
     return weights @ _pmf(rate * nodes, var_rate * nodes, width)
 

@@ -439,7 +439,7 @@ def warehouse_demand(
     method = np.where(exact, 1, np.where(discrete, 2, 0)).astype(np.int8)
 
     # a random lead time: demand over each gamma lead-time point (mixture weights per row)
-    lead_weight = lead_mean = lead_var = None
+    lead_weight = lead_mean = lead_var = lead_at = None
     rand = np.flatnonzero(lead_sd > 0)
     if rand.size:
         npts = LEAD_POINTS
@@ -470,21 +470,23 @@ def warehouse_demand(
             part = np.arange(start, min(start + per, idx_all.size))
             idx = idx_all[part]
             # a random lead time: the pmf mixed over its gamma points (each point a fixed lead time)
-            for sub in (idx[lead_sd[idx] <= 0], *[np.array([r]) for r in idx[lead_sd[idx] > 0]]):
+            for sub in (idx[lead_sd[idx] <= 0], idx[lead_sd[idx] > 0]):
                 if sub.size == 0:
                     continue
                 rows = np.searchsorted(idx_all, sub)
-                nodes, weights = lead_points(float(lead[sub[0]]), float(lead_sd[sub[0]]))
-                if lead_sd[sub[0]] <= 0:
-                    nodes, weights = [lead[sub]], np.ones(1)
+                points = [(lead[sub], np.ones(sub.size))]
+                if lead_sd[sub[0]] > 0:
+                    points = [(lead_at[sub, k], lead_weight[sub, k]) for k in range(lead_at.shape[1])]
                 acc = np.zeros((sub.size, int(w)))
                 tacc = np.zeros(sub.size)
-                for node, weight in zip(nodes, weights, strict=True):
-                    lw = np.broadcast_to(node, sub.shape)
-                    p_, t_ = _lead_pmf(sub, lw, exact, store_mean, store_sd, qi, active, own_mean, own_sd,
-                                       int(w))
-                    acc += weight * p_
-                    tacc += weight * t_
+                for lw, weight in points:
+                    on = weight > 0
+                    if not np.any(on):
+                        continue
+                    p_, t_ = _lead_pmf(sub[on], lw[on], exact, store_mean, store_sd, qi, active, own_mean,
+                                       own_sd, int(w))
+                    acc[on] += weight[on, None] * p_
+                    tacc[on] += weight[on] * t_
                 pmf[rows] = acc
                 tail[sub] = tacc
         keep = tail[idx_all] <= TAIL_TOL

@@ -134,3 +134,52 @@ def test_optimiser_never_worse_than_moment_choice():
     )
     # (the age integrals' cells depend on the bracket searched: equal to 0.1%)
     assert np.all(best.network_cost <= again.network_cost * (1 + 1e-3))
+
+
+def test_random_warehouse_lead_time_backorders_against_integration():
+    """One-for-one Poisson stores, gamma warehouse lead time: E[B0] = E_L E[(D0(L) - S0)^+] (scipy quad)."""
+    from scipy import integrate
+
+    lam = np.array([[0.3, 0.5]])
+    l0, sd0, r0, q0 = 6.0, 2.0, 1, 3
+    wd = ech.warehouse_demand(lam, np.sqrt(lam), np.ones((1, 2)), np.ones((1, 2), dtype=bool),
+                              np.array([l0]), np.array([sd0]))
+    st = ech.warehouse_moments(wd, np.array([float(r0)]), np.array([float(q0)]))
+    g = stats.gamma(a=(l0 / sd0) ** 2, scale=sd0 * sd0 / l0)
+    x = np.arange(200)
+
+    def eb(t):
+        p = stats.poisson.pmf(x, 0.8 * t)
+        return np.mean([(np.maximum(x - s, 0) * p).sum() for s in range(r0 + 1, r0 + q0 + 1)])
+
+    ref = integrate.quad(lambda t: eb(t) * g.pdf(t), 0, g.ppf(1 - 1e-12), limit=200)[0]
+    assert float(st.expected_backorders[0]) == pytest.approx(ref, rel=0.01)
+
+
+def test_random_lead_time_normal_warehouse_against_integration():
+    """Normal demand, gamma lead time: E[B0] against a double integral over the lead time and the uniform
+    position (scipy quad; normal loss E(X - y)^+ = s phi(z) - (y - m)(1 - Phi(z)), common practice)."""
+    from scipy import integrate
+
+    d = np.array([[40.0, 25.0]])
+    sdd = np.array([[12.0, 9.0]])
+    q = np.array([[200.0, 150.0]])
+    l0, sd0, r0, q0 = 10.0, 3.0, 700.0, 1200.0
+    wd = ech.warehouse_demand(d, sdd, q, np.zeros((1, 2), dtype=bool), np.array([l0]), np.array([sd0]))
+    assert not wd.discrete[0]
+    st = ech.warehouse_moments(wd, np.array([r0]), np.array([q0]))
+    g = stats.gamma(a=(l0 / sd0) ** 2, scale=sd0 * sd0 / l0)
+
+    def eb_given(t):
+        # the order stream's variance at lead time t, from the project's batching correction
+        v = float(ech.order_stream_variance(d * t, sdd**2 * t, q).sum())
+        m, s = 65.0 * t, np.sqrt(v)
+
+        def loss(y):
+            z = (y - m) / s
+            return s * stats.norm.pdf(z) - (y - m) * stats.norm.sf(z)
+
+        return integrate.quad(loss, r0, r0 + q0)[0] / q0
+
+    ref = integrate.quad(lambda t: eb_given(t) * g.pdf(t), g.ppf(1e-10), g.ppf(1 - 1e-10), limit=200)[0]
+    assert float(st.expected_backorders[0]) == pytest.approx(ref, rel=0.01)

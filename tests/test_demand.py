@@ -92,3 +92,32 @@ def test_estimate_demand_cutoffs_syntetos_boylan():
 def test_estimate_demand_rejects_bad_history(bad, word):
     with pytest.raises(ValueError, match=word):
         estimate_demand(bad)
+
+
+@pytest.mark.parametrize("mean, sd", [(10.0, 3.0), (9.0, 2.0), (35.0, 8.0), (35.0, 0.5), (4.0, 4.0)])
+def test_lead_points_match_gamma_moments(mean, sd):
+    """Gauss quadrature nodes reproduce the gamma's moments (scipy.stats.gamma as the reference)."""
+    from scipy import stats
+
+    from models.demand import lead_points
+
+    x, w = lead_points(mean, sd)
+    g = stats.gamma(a=(mean / sd) ** 2, scale=sd * sd / mean)
+    assert np.all(w > 0) and w.sum() == pytest.approx(1.0)
+    for k in (1, 2, 3, 4):
+        # Laguerre nodes are exact to degree 9; the Hermite fallback (shape > 100) to the normal's moments
+        rel = 1e-9 if (mean / sd) ** 2 <= 100 else 2e-3
+        assert w @ x**k == pytest.approx(g.moment(k), rel=rel)
+    # an expectation that is not a polynomial: P(L > mean + sd) smoothed by a Poisson count
+    f = lambda lead: stats.poisson.sf(int(mean), lead)  # noqa: E731
+    from scipy import integrate
+
+    ref = integrate.quad(lambda t: f(t) * g.pdf(t), 0, g.ppf(1 - 1e-12), limit=200)[0]
+    assert w @ np.array([f(t) for t in x]) == pytest.approx(ref, abs=0.02)
+
+
+def test_lead_points_fixed_lead_time():
+    from models.demand import lead_points
+
+    x, w = lead_points(7.0, 0.0)
+    assert x.tolist() == [7.0] and w.tolist() == [1.0]
