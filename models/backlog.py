@@ -61,15 +61,16 @@ __all__ = [
     "BACKLOG_LEAD_POINTS",
     "BacklogTables",
     "backlog_tables",
+    "window_width",
     "store_shortfall",
     "StoreFigures",
     "store_figures",
 ]
 
 #: Cells of each age integral (orders younger than ``L0``; windows after ``t - L0`` for negative ``R0``).
-AGE_CELLS = 64
+AGE_CELLS = 32
 #: Lead-time points of the unit model for a random warehouse lead time (each point is a full set of tables).
-BACKLOG_LEAD_POINTS = 5
+BACKLOG_LEAD_POINTS = 3
 #: Probability below which a tail (ages, backlog) is cut.
 BACKLOG_TAIL = 1e-10
 
@@ -163,6 +164,10 @@ class _LeadTables:
     recent: list
     width: int
     horizon: np.ndarray
+    age_tilt: list
+    late_tilt: list
+    age_mids: np.ndarray
+    late_mids: np.ndarray | None
 
 
 @dataclass(frozen=True)
@@ -250,6 +255,50 @@ def backlog_tables(
     )
 
 
+def _window_width(lam, vr, q, l0, own_rate, own_var_rate, r0_min, g) -> tuple[int, float, float]:
+    """Support (FFT length) of the warehouse windows, how far windows after an order reach (in units of the
+    others' demand), and the demand's dispersion (variance / mean of the customer demand, >= 1)."""
+    lam0 = float(np.sum(lam)) + own_rate
+    disp = float(max(np.max(vr / np.maximum(lam, 1e-300)), own_var_rate / max(own_rate, 1e-300), 1.0))
+    batches = float((np.asarray(q, dtype=float) ** 2).sum()) / 4.0
+    var0 = (float(np.sum(vr)) + max(own_var_rate, own_rate)) * l0 + batches
+    tail = disp * np.log(1.0 / TAIL_TOL)
+    width = int(np.ceil(lam0 * l0 + SUPPORT_SDS * np.sqrt(var0) + tail + np.max(q) + 2))
+    width = max(width, -r0_min + int(np.max(q)) + 2)
+    # windows after an order reach until the others' demand has passed -R0 (with room for its spread)
+    reach = -r0_min + 6.0 * np.sqrt(max(-r0_min, 1) * disp) + 6.0
+    if r0_min + g <= -1:
+        spread = reach * disp + batches
+        width = max(width, int(np.ceil(reach + SUPPORT_SDS * np.sqrt(spread) + tail + np.max(q) + 2)))
+    return sfft.next_fast_len(width, real=True), reach, disp
+
+
+def window_width(
+    rate: np.ndarray,
+    var_rate: np.ndarray,
+    order_quantity: np.ndarray,
+    warehouse_lead: float,
+    *,
+    warehouse_lead_sd: float = 0.0,
+    own_rate: float = 0.0,
+    own_var_rate: float = 0.0,
+    step: int = 1,
+    lowest_reorder_point: int = 0,
+) -> int:
+    """Support :func:`backlog_tables` would use for these arguments (to check the size before building).
+
+    Examples
+    --------
+    >>> window_width(np.array([0.5, 0.5]), np.array([0.5, 0.5]), np.array([1, 1]), 2.0) >= 2
+    True
+    """
+    lam = np.asarray(rate, dtype=float)
+    vr = np.maximum(np.asarray(var_rate, dtype=float), lam)
+    nodes, _ = lead_points(float(warehouse_lead), float(warehouse_lead_sd), BACKLOG_LEAD_POINTS)
+    return _window_width(lam, vr, np.asarray(order_quantity), float(nodes.max()), own_rate, own_var_rate,
+                         int(min(lowest_reorder_point, 0)), int(step))[0]
+
+
 def _lead_tables(rate, var_rate, order_quantity, warehouse_lead, own_rate, own_var_rate, step,
                  lowest_reorder_point, cells) -> _LeadTables:
     """:func:`backlog_tables` for one fixed warehouse lead time."""
@@ -259,22 +308,10 @@ def _lead_tables(rate, var_rate, order_quantity, warehouse_lead, own_rate, own_v
     m = lam.size
     l0 = float(warehouse_lead)
     g = int(step)
-    lam0 = lam.sum() + own_rate
-    var0 = (vr.sum() + max(own_var_rate, own_rate)) * l0 + float((q.astype(float) ** 2).sum()) / 4.0
     r0_min = int(min(lowest_reorder_point, 0))
     neg = r0_min + g <= -1
-    disp = max(float(var0 / max(lam0 * l0, 1e-12)), 1.0)
-    width = int(
-        np.ceil(lam0 * l0 + SUPPORT_SDS * np.sqrt(var0) + disp * np.log(1.0 / TAIL_TOL) + q.max() + 2)
-    )
-    width = max(width, -r0_min + int(q.max()) + 2)
-    # windows after an order reach until the others' demand has passed -R0 (with room for its spread)
-    reach = -r0_min + 6.0 * np.sqrt(max(-r0_min, 1) * disp) + 6.0
-    if neg:
-        spread = reach * disp + float((q.astype(float) ** 2).sum()) / 4.0
-        width = max(width, int(np.ceil(reach + SUPPORT_SDS * np.sqrt(spread) + disp * np.log(1.0 / TAIL_TOL)
-                                       + q.max() + 2)))
-    width = sfft.next_fast_len(width, real=True)
+    width, reach, disp = _window_width(lam, vr, q, l0, own_rate, own_var_rate, r0_min, g)
+    lam0 = lam.sum() + own_rate
 
     def stream_transforms(windows: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """rfft of each store's order stream (stationary) and of its own fresh batches, and of own demand."""
@@ -323,22 +360,41 @@ def _lead_tables(rate, var_rate, order_quantity, warehouse_lead, own_rate, own_v
     disp_i = vr / np.maximum(lam, 1e-300)
     n_bound = lam * span + SUPPORT_SDS * np.sqrt(vr * span) + disp_i * np.log(1.0 / TAIL_TOL)
     age, late, recent, horizon = [], [], [], np.zeros(m, dtype=np.int64)
+    age_tilt, late_tilt = [], []
+    mids = 0.5 * (edges[1:] + edges[:-1])
     for i in range(m):
         n_max = int(np.ceil(n_bound[i] + q[i])) + 1
         horizon[i] = n_max
-        cdf = np.cumsum(_pmf(lam[i] * edges, vr[i] * edges, n_max), axis=-1)  # (cells + 1, N)
+        poisson = vr[i] <= lam[i] * (1.0 + 1e-9)
+        cdf = np.cumsum(_pmf(lam[i] * edges, vr[i] * edges, n_max + 1), axis=-1)  # (cells + 1, N + 1)
         # P(A_{n+1} <= a) = P(D(a) >= n + 1) = 1 - F_a(n)
-        age.append(np.clip(cdf[:-1] - cdf[1:], 0.0, None).T)  # (N, cells)
+        cell = np.clip(cdf[:-1] - cdf[1:], 0.0, None).T  # (N + 1, cells)
+        age.append(cell[:-1])
+        age_tilt.append(_tilt(cell, mids, lam[i]) if poisson else None)
         if neg:
-            cx = np.cumsum(_pmf(lam[i] * xe, vr[i] * xe, n_max), axis=-1)  # (cells + 1, N)
+            cx = np.cumsum(_pmf(lam[i] * xe, vr[i] * xe, n_max + 1), axis=-1)  # (cells + 1, N + 1)
             cell = np.clip(cx[:-1] - cx[1:], 0.0, None)
             cell[-1] = cx[-2]  # the last cell takes every later time
-            late.append(cell.T)
+            cell = cell.T
+            late.append(cell[:-1])
+            tilt = _tilt(cell, xm, lam[i]) if poisson else None
+            if tilt is not None:
+                tilt[:, -1] = 0.0
+            late_tilt.append(tilt)
             recent.append(_pmf(np.array(lam[i] * l0), np.array(vr[i] * l0), n_max))
         else:
             late.append(None)
+            late_tilt.append(None)
             recent.append(None)
-    return _LeadTables(before, after, age, late, recent, width, horizon)
+    return _LeadTables(before, after, age, late, recent, width, horizon, age_tilt, late_tilt,
+                       mids, xm if neg else None)
+
+
+def _tilt(cell: np.ndarray, mids: np.ndarray, lam: float) -> np.ndarray:
+    """``E[(A - mid); A in cell]`` for ``A ~ Erlang(n + 1, lam)`` from the cell probabilities of
+    ``Erlang(n + 2)`` (``E[A; cell] = (n + 1) / lam * P(A_{n+2} in cell)``): rows ``n = 0 .. N - 1``."""
+    n1 = np.arange(1, cell.shape[0])[:, None]
+    return n1 / lam * cell[1:] - mids[None, :] * cell[:-1]
 
 
 def _unshipped_by_age(node: _LeadTables, i: int, r0: int, mpos: int, g: int, q: int, j: np.ndarray):
@@ -347,6 +403,8 @@ def _unshipped_by_age(node: _LeadTables, i: int, r0: int, mpos: int, g: int, q: 
     # G_before(cell, j) = (1/M) sum_k P(W >= R0 + g k - j + 1)
     gb = _lattice_mean(node.before[i], (r0 - j + 1)[None, :], mpos, g, 1.0, 0.0)  # (cells, Q)
     h = node.age[i] @ gb  # (N, Q)
+    if node.age_tilt[i] is not None:  # the age's spread inside each cell, times the slope of G there
+        h = h + node.age_tilt[i] @ np.gradient(gb, node.age_mids, axis=0)
     if r0 + g <= -1 and node.after is not None:
         n_max = h.shape[0]
         late = node.late[i]  # (N, cells)
@@ -358,6 +416,8 @@ def _unshipped_by_age(node: _LeadTables, i: int, r0: int, mpos: int, g: int, q: 
             ga = _lattice_mean(node.after[i], z0[None, :], mpos, g, 0.0, 1.0)  # (cells, Q)
             rows = cnt == c
             k_mat[rows] = late[rows] @ ga
+            if node.late_tilt[i] is not None:
+                k_mat[rows] += node.late_tilt[i][rows] @ np.gradient(ga, node.late_mids, axis=0)
         h = h + signal.fftconvolve(node.recent[i][:, None], k_mat, axes=0)[:n_max]
     return h
 
@@ -499,7 +559,7 @@ MAX_WINDOW = 1 << 15
 AUTO_MAX_STORE_ITEMS = 5_000
 #: Half-width of the warehouse reorder-point bracket searched with the unit-level figures, in sd of the
 #: warehouse lead-time demand (at least ``2 g``).
-SEARCH_SDS = 2.5
+SEARCH_SDS = 2.0
 
 
 def eligible_items(

@@ -1890,15 +1890,18 @@ def _apply_backlog(inp, demand, res, store_q, *, optimise: bool, method: str = "
         )
         search = optimise and inp.mode != "cycle_service"
         span = max(int(np.ceil(bl.SEARCH_SDS * sd0[it] / g)), 2) * g if search else 0
-        lo = r0i - span
+        lo = max(r0i - span, min(-q0i, r0i))  # (the moment search's own floor: R0 >= -Q0)
         tab_kw = dict(
             own_rate=own, own_var_rate=float(inp.warehouse_own_sd[it]) ** 2, step=g,
             warehouse_lead_sd=float(inp.warehouse_lead_sd[it]),
         )
+        if bl.window_width(lam, vr, q, float(inp.warehouse_lead[it]), lowest_reorder_point=lo,
+                           **tab_kw) > bl.MAX_WINDOW:
+            continue
         tables = bl.backlog_tables(
             lam, vr, q, float(inp.warehouse_lead[it]), lowest_reorder_point=lo, **tab_kw
         )
-        if tables.width > bl.MAX_WINDOW or int((tables.horizon * q).sum()) > bl.MAX_ITEM_WORK:
+        if int((tables.horizon * q).sum()) > bl.MAX_ITEM_WORK:
             continue
         if not search:
             st = bl.item_stores(tables, transit, r0i, q0i, reorder_point=r_new[it, cols], **kw)
@@ -1917,9 +1920,10 @@ def _apply_backlog(inp, demand, res, store_q, *, optimise: bool, method: str = "
                     cache[t] = (float(o[0] + h[0] + b[0]) + float(st.cost.sum()), st)
                 return cache[t][0]
 
-            t_best = _golden_integers(cost, 0, 2 * span // g)
-            if cost(span // g) <= cost(t_best):  # the moment model's choice
-                t_best = span // g
+            t_mom = (r0i - lo) // g
+            t_best = _golden_integers(cost, 0, (r0i + span - lo) // g)
+            if cost(t_mom) <= cost(t_best):  # the moment model's choice
+                t_best = t_mom
             st = cache[t_best][1]
         r0_new[it] = st.warehouse_reorder_point
         r_new[it, cols] = st.reorder_point
