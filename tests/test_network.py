@@ -269,6 +269,21 @@ def test_two_level_against_simulator_more(seed, items, stores, speed, basis):
     )
 
 
+@pytest.mark.slow
+@pytest.mark.parametrize("seed, items, stores, speed, basis", [(23, 6, 8, "slow", "per_unit_year"),
+                                                               (22, 6, 5, "slow", "per_unit")])
+def test_two_level_random_lead_times_against_simulator(seed, items, stores, speed, basis):
+    """Gamma lead times (coefficient of variation 0.25 at the warehouse and the stores; the simulator's orders
+    do not cross): the same limits."""
+    t = random_two_level(seed, items, stores, speed, basis)
+    t["lead_days_sd"] = 0.25 * t["lead_days"]
+    _, cost_err, fill_diff = simulate_against(t, Settings(backorder_basis=basis), years=100.0, reps=8)
+    print(f"\n{stores} stores, {speed}, lead CV 0.25: cost error max {100 * np.max(np.abs(cost_err)):.2f}%, "
+          f"fill max {100 * np.max(np.abs(fill_diff)):.2f} points")
+    assert np.max(np.abs(cost_err)) <= COST_LIMIT
+    assert np.max(np.abs(fill_diff)) <= FILL_LIMIT
+
+
 def three_level(seed: int, n_items: int) -> pd.DataFrame:
     """Invented: central C -> hubs H1, H2 -> three stores each, Poisson demand."""
     rng = np.random.default_rng(seed)
