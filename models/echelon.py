@@ -1293,6 +1293,10 @@ SEARCH_POINTS = 5
 GOLDEN_MAX_ITER = 10
 #: Items per process below which optimise_two_level does not split the work.
 PARALLEL_MIN_ITEMS = 500
+#: Items from which the unit-level store figures run in worker processes (when workers > 1).
+BACKLOG_PARALLEL_MIN_ITEMS = 24
+#: Seconds between progress lines of the unit-level store figures.
+PROGRESS_SECONDS = 5.0
 #: Rounds of the search (each narrows the bracket around the best candidate).
 SEARCH_ROUNDS = 7
 #: The search stops when the bracket is below this many units (count) / this fraction of the LTD sd (normal).
@@ -1751,6 +1755,8 @@ def evaluate_two_level(
     *,
     demand: WarehouseDemand | None = None,
     store_method: str = "auto",
+    workers: int = 1,
+    progress=None,
 ) -> TwoLevelResult:
     """Evaluate given ``(R, Q)`` at a warehouse and its stores, per item (METRIC-type, batch ordering).
 
@@ -1764,6 +1770,10 @@ def evaluate_two_level(
         items with count demand at every store and a constant warehouse lead time) or from the three-point
         delay mixture. ``"auto"``: the unit-level figures where they apply, for up to
         ``models.backlog.AUTO_MAX_STORE_ITEMS`` store-items per call.
+    workers : int
+        Processes for the unit-level figures (items are independent).
+    progress : callable, optional
+        Called with a line of text now and then during the unit-level figures.
 
     Returns
     -------
@@ -1792,7 +1802,8 @@ def evaluate_two_level(
     q0 = np.asarray(warehouse_order_quantity, dtype=float)
     demand = _lattice_q0(demand, q0)
     res = _evaluate_mixture(inp, store_reorder_point, sq, warehouse_reorder_point, q0, demand)
-    return _apply_backlog(inp, demand, res, sq, optimise=False, method=store_method)
+    return _apply_backlog(inp, demand, res, sq, optimise=False, method=store_method, workers=workers,
+                          progress=progress)
 
 
 def _evaluate_mixture(inp, store_reorder_point, sq, warehouse_reorder_point, q0, demand) -> TwoLevelResult:
@@ -1834,41 +1845,27 @@ def _golden_integers(f, a: int, b: int) -> int:
     return min(range(a, b + 1), key=f)
 
 
-def _apply_backlog(inp, demand, res, store_q, *, optimise: bool, method: str = "auto"):
-    """Unit-level store figures (:mod:`models.backlog`) for the items they apply to.
+def _backlog_chunk(args):
+    return _backlog_items(*args)
 
-    With ``optimise`` the warehouse reorder point is searched again (golden section over the lattice within
-    ``SEARCH_SDS`` sd of the moment model's choice, which is also a candidate) with each store's reorder point
-    chosen by the unit-level figures (least cost, or the least meeting its fill-rate target; in the
-    cycle-service mode the stores keep the moment model's reorder points and only the figures change).
-    """
-    from dataclasses import replace
+
+def _backlog_items(inp, demand, items, r0_in, r_in, store_q, q0, optimise, say=None) -> dict:
+    """Unit-level figures (with ``optimise``, the R0 search too): {item: (cols, ItemStores, lam)}."""
+    import time
 
     from models import backlog as bl
 
-    if method not in ("auto", "backlog", "moments"):
-        raise ValueError(f"store_method must be 'auto', 'backlog' or 'moments'; found {method!r}")
-    if method == "moments":
-        return res
-    n, m = inp.store_mean.shape
     act = inp.store_active
-    q0 = np.asarray(res.warehouse_order_quantity, dtype=float)
-    own_count = np.asarray(inp.warehouse_count, dtype=bool) | (inp.warehouse_own_mean == 0)
-    ok = bl.eligible_items(
-        inp.store_count, act, inp.store_mean, store_q, inp.warehouse_lead, inp.warehouse_lead_sd, q0,
-        inp.warehouse_own_mean, own_count, demand.step,
-    )
-    if method == "auto" and int(act[ok].sum()) > bl.AUTO_MAX_STORE_ITEMS:
-        return res
-    items = np.flatnonzero(ok)
-    if items.size == 0:
-        return res
     dpy = inp.days_per_year
     sd0 = np.sqrt(np.maximum(demand.var, 0.0))
-    r0_new = np.asarray(res.warehouse_reorder_point, dtype=float).copy()
-    r_new = np.asarray(res.store_reorder_point, dtype=float).copy()
+    r0_new = np.asarray(r0_in, dtype=float)
+    r_new = np.asarray(r_in, dtype=float)
     found = {}
-    for it in items:
+    last = time.monotonic()
+    for done, it in enumerate(items):
+        if say is not None and time.monotonic() - last > PROGRESS_SECONDS:
+            say(f"store figures unit by unit: {done}/{len(items)} items")
+            last = time.monotonic()
         cols = np.flatnonzero(act[it] & (inp.store_mean[it] > 0))
         lam = inp.store_mean[it, cols]
         vr = inp.store_sd[it, cols] ** 2
@@ -1925,9 +1922,59 @@ def _apply_backlog(inp, demand, res, store_q, *, optimise: bool, method: str = "
             if cost(t_mom) <= cost(t_best):  # the moment model's choice
                 t_best = t_mom
             st = cache[t_best][1]
+        found[it] = (cols, st, lam)
+    return found
+
+
+def _apply_backlog(inp, demand, res, store_q, *, optimise: bool, method: str = "auto", workers: int = 1,
+                   progress=None):
+    """Unit-level store figures (:mod:`models.backlog`) for the items they apply to.
+
+    With ``optimise`` the warehouse reorder point is searched again (golden section over the lattice within
+    ``SEARCH_SDS`` sd of the moment model's choice, which is also a candidate) with each store's reorder point
+    chosen by the unit-level figures (least cost, or the least meeting its fill-rate target; in the
+    cycle-service mode the stores keep the moment model's reorder points and only the figures change).
+    """
+    from dataclasses import replace
+
+    from models import backlog as bl
+
+    if method not in ("auto", "backlog", "moments"):
+        raise ValueError(f"store_method must be 'auto', 'backlog' or 'moments'; found {method!r}")
+    if method == "moments":
+        return res
+    n, m = inp.store_mean.shape
+    act = inp.store_active
+    q0 = np.asarray(res.warehouse_order_quantity, dtype=float)
+    own_count = np.asarray(inp.warehouse_count, dtype=bool) | (inp.warehouse_own_mean == 0)
+    ok = bl.eligible_items(
+        inp.store_count, act, inp.store_mean, store_q, inp.warehouse_lead, inp.warehouse_lead_sd, q0,
+        inp.warehouse_own_mean, own_count, demand.step,
+    )
+    if method == "auto" and int(act[ok].sum()) > bl.AUTO_MAX_STORE_ITEMS:
+        return res
+    items = np.flatnonzero(ok)
+    if items.size == 0:
+        return res
+    dpy = inp.days_per_year
+    r0_new = np.asarray(res.warehouse_reorder_point, dtype=float).copy()
+    r_new = np.asarray(res.store_reorder_point, dtype=float).copy()
+    say = progress or (lambda _text: None)
+    if workers > 1 and items.size >= BACKLOG_PARALLEL_MIN_ITEMS:
+        from concurrent.futures import ProcessPoolExecutor
+
+        say(f"store figures unit by unit: {items.size} items in {workers} processes")
+        chunks = np.array_split(items, workers)
+        jobs = [(inp, demand, c, r0_new, r_new, store_q, q0, optimise) for c in chunks]
+        with ProcessPoolExecutor(max_workers=workers) as pool:
+            found = {}
+            for part in pool.map(_backlog_chunk, jobs):
+                found.update(part)
+    else:
+        found = _backlog_items(inp, demand, items, r0_new, r_new, store_q, q0, optimise, say)
+    for it, (cols, st, _) in found.items():
         r0_new[it] = st.warehouse_reorder_point
         r_new[it, cols] = st.reorder_point
-        found[it] = (cols, st, lam)
     if not found:
         return res
     out = _evaluate_mixture(inp, r_new, store_q, r0_new, q0, demand)
@@ -2086,6 +2133,7 @@ def optimise_two_level(
     rounds: int = SEARCH_ROUNDS,
     workers: int = 1,
     store_method: str = "auto",
+    progress=None,
 ) -> tuple[TwoLevelResult, TwoLevelResult]:
     """Network-optimal warehouse reorder point with the stores re-optimised for each candidate.
 
@@ -2096,6 +2144,11 @@ def optimise_two_level(
         Grid points bracketing the warehouse reorder point (``rounds`` is kept for the tree search).
     workers : int
         Processes over chunks of items (items are independent); 1 runs in this process.
+    store_method : {"auto", "backlog", "moments"}
+        As in :func:`evaluate_two_level`; with the unit model the warehouse reorder point is searched again
+        around the moment model's choice.
+    progress : callable, optional
+        Called with a line of text now and then during the unit-level figures.
 
     Returns
     -------
@@ -2138,7 +2191,8 @@ def optimise_two_level(
     store_r, store_q, r0_seed, q0, demand = single_site_seed(inp)
     demand = _lattice_q0(demand, q0)
     seed_eval = evaluate_two_level(
-        inp, store_r, store_q, r0_seed, q0, demand=demand, store_method=store_method
+        inp, store_r, store_q, r0_seed, q0, demand=demand, store_method=store_method, workers=workers,
+        progress=progress,
     )
     tables = discrete_tables(demand)
     sd0 = np.sqrt(np.maximum(demand.var, 0.0))
@@ -2189,7 +2243,8 @@ def optimise_two_level(
         inp, ew, vw, store_q, state.wait_probability, refine=True, mw=state.max_wait
     )
     result = _assemble(inp, demand, best_r, q0, state, ew, vw, rows, mean, sd, codes, pol, its, done)
-    result = _apply_backlog(inp, demand, result, store_q, optimise=True, method=store_method)
+    result = _apply_backlog(inp, demand, result, store_q, optimise=True, method=store_method, workers=workers,
+                            progress=progress)
     return result, seed_eval
 
 

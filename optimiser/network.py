@@ -417,7 +417,7 @@ def _single_site_frame(table: pd.DataFrame, settings) -> pd.DataFrame:
     return pl._plan_single_site(table.reset_index(drop=True), settings, [])
 
 
-def plan_network(itemsites: pd.DataFrame, settings, *, return_summary: bool = False):
+def plan_network(itemsites: pd.DataFrame, settings, *, return_summary: bool = False, progress=None):
     """Plan every item of a network: policies for every stocked site, the network delay included.
 
     Parameters
@@ -428,6 +428,8 @@ def plan_network(itemsites: pd.DataFrame, settings, *, return_summary: bool = Fa
         Case settings (``mode``, ``target``, ``backorder_basis``, ``days_per_year``).
     return_summary : bool
         Also return the per-item summary (:data:`SUMMARY_COLUMNS`).
+    progress : callable, optional
+        Called with a line of text now and then (long plans).
 
     Returns
     -------
@@ -439,7 +441,7 @@ def plan_network(itemsites: pd.DataFrame, settings, *, return_summary: bool = Fa
     --------
     See ``tests/test_network.py``.
     """
-    return _run(itemsites, settings, None, return_summary)
+    return _run(itemsites, settings, None, return_summary, progress)
 
 
 def evaluate_network(itemsites: pd.DataFrame, policies: pd.DataFrame, settings) -> pd.DataFrame:
@@ -478,7 +480,7 @@ def network_summary(itemsites: pd.DataFrame, settings) -> pd.DataFrame:
     return plan_network(itemsites, settings, return_summary=True)[1]
 
 
-def _run(itemsites: pd.DataFrame, settings, given: np.ndarray | None, return_summary: bool):
+def _run(itemsites: pd.DataFrame, settings, given: np.ndarray | None, return_summary: bool, progress=None):
     table = itemsites.reset_index(drop=True)
     forest = forest_from_itemsites(table)
     frames = []
@@ -497,7 +499,10 @@ def _run(itemsites: pd.DataFrame, settings, given: np.ndarray | None, return_sum
         if depth == 2:
             inp = _two_level_inputs(table, rows, settings)
             if given is None:
-                res, seed = ech.optimise_two_level(inp, workers=min(2, os.cpu_count() or 1))
+                if progress is not None:
+                    progress(f"network below {block.root}: {len(rows)} items")
+                workers = min(2, os.cpu_count() or 1)
+                res, seed = ech.optimise_two_level(inp, workers=workers, progress=progress)
                 frames.append(_frame_two_level(table, rows, res, inp))
                 if return_summary:
                     nominal = _seed_nominal_cost(inp)
@@ -506,7 +511,8 @@ def _run(itemsites: pd.DataFrame, settings, given: np.ndarray | None, return_sum
                 st = rows[:, 1:]
                 sr = np.where(st >= 0, given[np.maximum(st, 0), 0], 0.0)
                 sq = np.where(st >= 0, given[np.maximum(st, 0), 1], 1.0)
-                res = ech.evaluate_two_level(inp, sr, sq, given[rows[:, 0], 0], given[rows[:, 0], 1])
+                res = ech.evaluate_two_level(inp, sr, sq, given[rows[:, 0], 0], given[rows[:, 0], 1],
+                                             workers=min(2, os.cpu_count() or 1))
                 frames.append(_frame_two_level(table, rows, res, inp))
         else:
             frames.append(_tree(table, rows, block, settings, given, summaries if return_summary else None))

@@ -544,8 +544,12 @@ def plan_case(case: Case, *, progress: Callable[[str], None] | None = None, grou
     if _has_upstream(itemsites):
         plan_network = _network_function("plan_network")
         if plan_network is not None:
-            if "return_summary" in inspect.signature(plan_network).parameters:
-                policies, network_summary = plan_network(itemsites, case.settings, return_summary=True)
+            params = inspect.signature(plan_network).parameters
+            if "return_summary" in params:
+                extra = {"progress": say} if "progress" in params else {}
+                policies, network_summary = plan_network(
+                    itemsites, case.settings, return_summary=True, **extra
+                )
             else:
                 policies = plan_network(itemsites, case.settings)
             policies = policies[POLICY_COLUMNS].reset_index(drop=True)
