@@ -557,6 +557,9 @@ MAX_ITEM_WORK = 50_000_000
 MAX_WINDOW = 1 << 15
 #: Largest number of store-items in one call for which ``method="auto"`` uses the unit-level evaluation.
 AUTO_MAX_STORE_ITEMS = 5_000
+#: Largest variance-to-mean ratio of a store's demand for the unit model (compound demand is taken unit by
+#: unit: the undershoot of the reorder point is ignored).
+MAX_DISPERSION = 4.0
 #: Half-width of the warehouse reorder-point bracket searched with the unit-level figures, in sd of the
 #: warehouse lead-time demand (at least ``2 g``).
 SEARCH_SDS = 2.0
@@ -573,6 +576,8 @@ def eligible_items(
     own_rate: np.ndarray,
     own_count: np.ndarray,
     step: np.ndarray,
+    *,
+    dispersion: np.ndarray | None = None,
 ) -> np.ndarray:
     """Items the unit-level evaluation applies to (boolean, shape (n,)).
 
@@ -588,6 +593,9 @@ def eligible_items(
     own_count : ndarray of bool, shape (n,)
     step : ndarray of int, shape (n,)
         Lattice step of the warehouse position.
+    dispersion : ndarray, shape (n, m), optional
+        Variance-to-mean ratio of each store's demand; items with a store above ``MAX_DISPERSION`` are left
+        to the moment model.
 
     Returns
     -------
@@ -604,7 +612,11 @@ def eligible_items(
     -----
     Every store with demand has count demand and a whole batch ``Q_i >= 1``; the warehouse lead time is
     positive (a random one is averaged over ``models.demand.lead_points``); ``Q0`` is a whole multiple of the
-    lattice step; the warehouse's own customers, if any, have count demand.
+    lattice step; the warehouse's own customers, if any, have count demand; no store's demand is more
+    dispersed than ``MAX_DISPERSION``. (The unit model takes compound demand unit by unit. Measured on the
+    demo case against the simulator, store backorders of all-count items: within 3% where every store's
+    ratio is up to 2, 35% low between 2 and 4, 82% low above 4; the moment model errs there by +75%, +35%
+    and -51%.)
     """
     flowing = active & (rate > 0)
     q = np.where(flowing, order_quantity, 1.0)
@@ -614,6 +626,8 @@ def eligible_items(
     ok &= (warehouse_lead > 0) & np.isfinite(warehouse_lead_sd)
     ok &= np.isfinite(q0) & (q0 >= 1) & (np.abs(np.mod(q0, step)) < 1e-9)
     ok &= (own_rate == 0) | own_count
+    if dispersion is not None:
+        ok &= np.all(~flowing | (dispersion <= MAX_DISPERSION), axis=1)
     return ok
 
 

@@ -1950,6 +1950,7 @@ def _apply_backlog(inp, demand, res, store_q, *, optimise: bool, method: str = "
     ok = bl.eligible_items(
         inp.store_count, act, inp.store_mean, store_q, inp.warehouse_lead, inp.warehouse_lead_sd, q0,
         inp.warehouse_own_mean, own_count, demand.step,
+        dispersion=inp.store_sd**2 / np.maximum(inp.store_mean, 1e-300),
     )
     if method == "auto" and int(act[ok].sum()) > bl.AUTO_MAX_STORE_ITEMS:
         return res
