@@ -54,7 +54,7 @@ from scipy import fft as sfft
 from scipy import signal
 
 from models.demand import lead_points
-from models.echelon import SUPPORT_SDS, TAIL_TOL, count_pmf
+from models.echelon import SUPPORT_SDS, TAIL_TOL, _strided_cumsum, count_pmf
 
 __all__ = [
     "AGE_CELLS",
@@ -62,6 +62,7 @@ __all__ = [
     "BacklogTables",
     "backlog_tables",
     "window_width",
+    "transit_pmf",
     "store_shortfall",
     "StoreFigures",
     "store_figures",
@@ -80,17 +81,6 @@ def _pmf(mean: np.ndarray, var_rate_times: np.ndarray, width: int) -> np.ndarray
     mean = np.asarray(mean, dtype=float)
     var = np.maximum(np.asarray(var_rate_times, dtype=float), mean)
     return count_pmf(mean.ravel(), var.ravel(), width)[0].reshape(mean.shape + (width,))
-
-
-def _strided_cumsum(a: np.ndarray, g: int) -> np.ndarray:
-    """Cumulative sums along the last axis over every ``g``-th element (each residue class apart)."""
-    if g == 1:
-        return np.cumsum(a, axis=-1)
-    w = a.shape[-1]
-    wp = -(-w // g) * g
-    pad = np.zeros(a.shape[:-1] + (wp,))
-    pad[..., :w] = a
-    return np.cumsum(pad.reshape(a.shape[:-1] + (wp // g, g)), axis=-2).reshape(a.shape[:-1] + (wp,))[..., :w]
 
 
 def _lattice_mean(
@@ -499,14 +489,14 @@ class StoreFigures:
     order_quantity: int
 
 
-def store_figures(shortfall: tuple, transit_pmf: np.ndarray, order_quantity: int) -> StoreFigures:
+def store_figures(shortfall: tuple, transit: np.ndarray, order_quantity: int) -> StoreFigures:
     """Fill rate, backorders and on hand of one store for every reorder point in its relevant range.
 
     Parameters
     ----------
     shortfall : (offset, pmf)
         ``Z = U - K`` from :func:`store_shortfall`.
-    transit_pmf : ndarray
+    transit : ndarray
         Pmf of the store's demand over its transit time ``L_i`` on ``0, 1, ..``.
     order_quantity : int
 
@@ -530,7 +520,7 @@ def store_figures(shortfall: tuple, transit_pmf: np.ndarray, order_quantity: int
     """
     off, pz = shortfall
     q = int(order_quantity)
-    v = np.convolve(np.asarray(transit_pmf, dtype=float), pz)
+    v = np.convolve(np.asarray(transit, dtype=float), pz)
     v = v / v.sum()
     low = off  # R from the lowest value of V
     x = off + np.arange(v.size)
@@ -631,8 +621,27 @@ def eligible_items(
     return ok
 
 
-def _transit_pmf(rate: float, var_rate: float, lead: float, lead_sd: float) -> np.ndarray:
-    """Pmf of a store's demand over its transit time (a random one: mixed over its gamma points)."""
+def transit_pmf(rate: float, var_rate: float, lead: float, lead_sd: float) -> np.ndarray:
+    """Pmf of a store's demand over its transit time (a random one: mixed over its gamma points).
+
+    Parameters
+    ----------
+    rate, var_rate : float
+        Demand per time unit and its variance per time unit (Poisson where equal).
+    lead, lead_sd : float
+        Transit time mean and standard deviation (gamma).
+
+    Returns
+    -------
+    ndarray
+        Pmf on ``0, 1, ..``.
+
+    Examples
+    --------
+    >>> p = transit_pmf(2.0, 2.0, 1.5, 0.0)
+    >>> round(float(p @ np.arange(p.size)), 9)
+    3.0
+    """
     mean = rate * lead
     var = max(var_rate * lead + rate * rate * lead_sd * lead_sd, mean)
     width = int(np.ceil(mean + SUPPORT_SDS * np.sqrt(var) + max(var / max(mean, 1e-12), 1.0) * 25.0 + 2))

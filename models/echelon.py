@@ -761,13 +761,14 @@ class _DiscreteLoss:
 
 
 def _strided_cumsum(a: np.ndarray, g: int) -> np.ndarray:
+    """Cumulative sums along the last axis over every ``g``-th element (each residue class apart)."""
     if g == 1:
-        return np.cumsum(a, axis=1)
-    n, w = a.shape
+        return np.cumsum(a, axis=-1)
+    w = a.shape[-1]
     wp = -(-w // g) * g
-    pad = np.zeros((n, wp))
-    pad[:, :w] = a
-    return np.cumsum(pad.reshape(n, wp // g, g), axis=1).reshape(n, wp)[:, :w]
+    pad = np.zeros(a.shape[:-1] + (wp,))
+    pad[..., :w] = a
+    return np.cumsum(pad.reshape(a.shape[:-1] + (wp // g, g)), axis=-2).reshape(a.shape[:-1] + (wp,))[..., :w]
 
 
 def discrete_tables(demand: WarehouseDemand) -> list:
@@ -1875,7 +1876,7 @@ def _backlog_items(inp, demand, items, r0_in, r_in, store_q, q0, optimise, say=N
         r0i = int(round(r0_new[it]))
         own = float(inp.warehouse_own_mean[it])
         transit = [
-            bl._transit_pmf(lam[k], vr[k], inp.store_lead[it, c], inp.store_lead_sd[it, c])
+            bl.transit_pmf(lam[k], vr[k], inp.store_lead[it, c], inp.store_lead_sd[it, c])
             for k, c in enumerate(cols)
         ]
         kw = dict(
