@@ -1766,11 +1766,12 @@ def evaluate_two_level(
     inp : TwoLevelInputs
     store_reorder_point, store_order_quantity : ndarray, shape (n, m)
     warehouse_reorder_point, warehouse_order_quantity : ndarray, shape (n,)
-    store_method : {"auto", "backlog", "moments"}
+    store_method : {"auto", "backlog", "units", "moments"}
         Store figures from the units each store has unshipped at the warehouse (:mod:`models.backlog`;
-        items with count demand at every store and a constant warehouse lead time) or from the three-point
-        delay mixture. ``"auto"``: the unit-level figures where they apply, for up to
-        ``models.backlog.AUTO_MAX_STORE_ITEMS`` store-items per call.
+        items with count demand at every store, variance/mean at most ``models.backlog.MAX_DISPERSION``) or
+        from the three-point delay mixture. ``"auto"``: the unit-level figures where they apply, for up to
+        ``models.backlog.AUTO_MAX_STORE_ITEMS`` store-items per call; ``"backlog"``: wherever they apply;
+        ``"units"``: also for normal-demand stores, taken as counts with the same mean and variance.
     workers : int
         Processes for the unit-level figures (items are independent).
     progress : callable, optional
@@ -1873,6 +1874,9 @@ def _backlog_items(inp, demand, items, r0_in, r_in, store_q, q0, optimise, say=N
         q = np.rint(store_q[it, cols]).astype(np.int64)
         g = int(demand.step[it])
         q0i = int(round(q0[it]))
+        if not demand.discrete[it] and float(inp.warehouse_own_mean[it]) == 0:
+            g = int(np.gcd.reduce(q))  # normal rows taken as counts: the position moves in store batches
+            g = g if g >= 1 and q0i % g == 0 else 1
         r0i = int(round(r0_new[it]))
         own = float(inp.warehouse_own_mean[it])
         transit = [
@@ -1940,16 +1944,18 @@ def _apply_backlog(inp, demand, res, store_q, *, optimise: bool, method: str = "
 
     from models import backlog as bl
 
-    if method not in ("auto", "backlog", "moments"):
-        raise ValueError(f"store_method must be 'auto', 'backlog' or 'moments'; found {method!r}")
+    if method not in ("auto", "backlog", "units", "moments"):
+        raise ValueError(f"store_method must be 'auto', 'backlog', 'units' or 'moments'; found {method!r}")
     if method == "moments":
         return res
     n, m = inp.store_mean.shape
     act = inp.store_active
     q0 = np.asarray(res.warehouse_order_quantity, dtype=float)
     own_count = np.asarray(inp.warehouse_count, dtype=bool) | (inp.warehouse_own_mean == 0)
+    # "units": normal-demand stores too, as counts with the same mean and variance (the simulator's rule)
+    count = np.ones_like(inp.store_count) if method == "units" else inp.store_count
     ok = bl.eligible_items(
-        inp.store_count, act, inp.store_mean, store_q, inp.warehouse_lead, inp.warehouse_lead_sd, q0,
+        count, act, inp.store_mean, store_q, inp.warehouse_lead, inp.warehouse_lead_sd, q0,
         inp.warehouse_own_mean, own_count, demand.step,
         dispersion=inp.store_sd**2 / np.maximum(inp.store_mean, 1e-300),
     )

@@ -38,6 +38,11 @@ __all__ = [
 MODES = ("cost", "cycle_service", "fill_rate")
 BACKORDER_BASES = ("per_unit", "per_unit_year")
 DISTRIBUTIONS = ("normal", "poisson", "negbin", "auto")
+#: How stores behind a warehouse are evaluated (README, "Multi-echelon network"): "auto" - unit by unit where
+#: every store has count demand (variance/mean up to 4), else by the delay moments; "units" - unit by unit for
+#: every item the sizes allow, normal demand taken as counts with its mean and variance (slower); "moments".
+STORE_MODELS = ("auto", "units", "moments")
+DEFAULT_STORE_MODEL = "auto"
 
 DEFAULT_DAYS_PER_YEAR = 365.0
 DEFAULT_HOLDING_RATE = 0.25  # common practice: 20-30 % of unit cost per year
@@ -48,7 +53,7 @@ DEFAULT_DISTRIBUTION = "auto"
 #: site names become folder names under ``sites/``: letters, digits, space, dot, dash, underscore.
 SITE_NAME_PATTERN = re.compile(r"^\w[\w .\-]*$")
 
-TOML_KEYS = {"name", "currency", "days_per_year", "holding_rate", "distribution", "service"}
+TOML_KEYS = {"name", "currency", "days_per_year", "holding_rate", "distribution", "store_model", "service"}
 SERVICE_KEYS = {"mode", "target", "backorder_basis"}
 
 
@@ -72,6 +77,9 @@ class Settings:
         ``"per_unit"`` (cost per unit short) or ``"per_unit_year"`` (cost per unit backordered per year).
     distribution : str
         Default lead-time demand distribution: ``"normal"``, ``"poisson"``, ``"negbin"`` or ``"auto"``.
+    store_model : str
+        How stores behind a warehouse are evaluated: ``"auto"``, ``"units"`` or ``"moments"``
+        (:data:`STORE_MODELS`).
     """
 
     name: str
@@ -82,6 +90,7 @@ class Settings:
     target: float | None = None
     backorder_basis: str = DEFAULT_BACKORDER_BASIS
     distribution: str = DEFAULT_DISTRIBUTION
+    store_model: str = DEFAULT_STORE_MODEL
 
     def as_dict(self) -> dict[str, Any]:
         """Plain dict of the settings (for ``summary.json``)."""
@@ -94,6 +103,7 @@ class Settings:
             "target": self.target,
             "backorder_basis": self.backorder_basis,
             "distribution": self.distribution,
+            "store_model": self.store_model,
         }
 
 
@@ -477,6 +487,7 @@ def _read_settings(folder: Path, warnings: list[str]) -> Settings:
     days = number(raw, "days_per_year", "days_per_year", DEFAULT_DAYS_PER_YEAR, strict=True)
     rate = number(raw, "holding_rate", "holding_rate", DEFAULT_HOLDING_RATE, strict=False)
     distribution = text(raw, "distribution", "distribution", DEFAULT_DISTRIBUTION, DISTRIBUTIONS)
+    store_model = text(raw, "store_model", "store_model", DEFAULT_STORE_MODEL, STORE_MODELS)
     mode = text(service, "mode", "service.mode", DEFAULT_MODE, MODES)
     basis = text(
         service, "backorder_basis", "service.backorder_basis", DEFAULT_BACKORDER_BASIS, BACKORDER_BASES
@@ -495,6 +506,7 @@ def _read_settings(folder: Path, warnings: list[str]) -> Settings:
         target=target,
         backorder_basis=basis,
         distribution=distribution,
+        store_model=store_model,
     )
 
 

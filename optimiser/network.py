@@ -480,6 +480,11 @@ def network_summary(itemsites: pd.DataFrame, settings) -> pd.DataFrame:
     return plan_network(itemsites, settings, return_summary=True)[1]
 
 
+def _store_method(settings) -> str:
+    """``models.echelon`` store method for the case setting ``store_model`` (auto / units / moments)."""
+    return {"auto": "auto", "units": "units", "moments": "moments"}[getattr(settings, "store_model", "auto")]
+
+
 def _run(itemsites: pd.DataFrame, settings, given: np.ndarray | None, return_summary: bool, progress=None):
     table = itemsites.reset_index(drop=True)
     forest = forest_from_itemsites(table)
@@ -502,7 +507,9 @@ def _run(itemsites: pd.DataFrame, settings, given: np.ndarray | None, return_sum
                 if progress is not None:
                     progress(f"network below {block.root}: {len(rows)} items")
                 workers = min(2, os.cpu_count() or 1)
-                res, seed = ech.optimise_two_level(inp, workers=workers, progress=progress)
+                res, seed = ech.optimise_two_level(
+                    inp, workers=workers, progress=progress, store_method=_store_method(settings)
+                )
                 frames.append(_frame_two_level(table, rows, res, inp))
                 if return_summary:
                     nominal = _seed_nominal_cost(inp)
@@ -512,7 +519,8 @@ def _run(itemsites: pd.DataFrame, settings, given: np.ndarray | None, return_sum
                 sr = np.where(st >= 0, given[np.maximum(st, 0), 0], 0.0)
                 sq = np.where(st >= 0, given[np.maximum(st, 0), 1], 1.0)
                 res = ech.evaluate_two_level(inp, sr, sq, given[rows[:, 0], 0], given[rows[:, 0], 1],
-                                             workers=min(2, os.cpu_count() or 1))
+                                             workers=min(2, os.cpu_count() or 1),
+                                             store_method=_store_method(settings))
                 frames.append(_frame_two_level(table, rows, res, inp))
         else:
             frames.append(_tree(table, rows, block, settings, given, summaries if return_summary else None))

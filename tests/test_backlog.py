@@ -183,3 +183,18 @@ def test_random_lead_time_normal_warehouse_against_integration():
 
     ref = integrate.quad(lambda t: eb_given(t) * g.pdf(t), g.ppf(1e-10), g.ppf(1 - 1e-10), limit=200)[0]
     assert float(st.expected_backorders[0]) == pytest.approx(ref, rel=0.01)
+
+
+def test_units_method_takes_normal_stores_as_counts():
+    """store_method="units": normal-demand stores evaluated unit by unit with the same mean and variance;
+    with Poisson-like variance it equals the count evaluation of the same items."""
+    from dataclasses import replace
+
+    inp, sr, sq, r0, q0, _ = axsater_policy(6)
+    normal = replace(inp, store_count=np.zeros_like(inp.store_count))
+    units = ech.evaluate_two_level(normal, sr, sq, r0, q0, store_method="units")
+    counts = ech.evaluate_two_level(inp, sr, sq, r0, q0, store_method="backlog")
+    assert np.all(units.store_method[inp.store_active] == 1)
+    np.testing.assert_allclose(units.store_policy.fill_rate, counts.store_policy.fill_rate, atol=1e-9)
+    # (the warehouse itself stays on its normal model: only the stores are compared)
+    np.testing.assert_allclose(units.store_policy.total_cost, counts.store_policy.total_cost, rtol=1e-6)

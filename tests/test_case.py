@@ -298,6 +298,15 @@ BAD_CASES = [
         "must be one of",
     ),
     (
+        "bad-store-model",
+        {"case.toml": edit(TOML, 'distribution = "normal"',
+                           'distribution = "normal"\n        store_model = "exact"')},
+        "case.toml",
+        None,
+        "store_model",
+        "must be one of",
+    ),
+    (
         "bad-distribution",
         {"items.csv": edit(ITEMS, "50,,30,,,,poisson", "50,,30,,,,gamma")},
         "items.csv",
@@ -537,3 +546,14 @@ def test_site_without_items_is_warned(case_writer) -> None:
     sites = BASE_FILES["sites.csv"] + "        s3,wh,1,,\n"
     warnings = load_case(case_writer({"sites.csv": sites})).warnings
     assert any("s3 stock no item" in w for w in warnings)
+
+
+def test_store_model_setting(tmp_path):
+    """case.toml store_model: default auto, "units" read and shown in the settings."""
+    from optimiser.case import load_case
+
+    case = load_case(write_case(tmp_path / "a"))
+    assert case.settings.store_model == "auto"
+    toml = edit(TOML, 'distribution = "normal"', 'distribution = "normal"\n        store_model = "units"')
+    case = load_case(write_case(tmp_path / "b", {"case.toml": toml}))
+    assert case.settings.store_model == "units" and case.settings.as_dict()["store_model"] == "units"
