@@ -243,12 +243,13 @@ SLOW_NETWORKS = [
 ]
 
 
-def _check_against_simulator(seed, items, stores, speed, basis, years, reps):
+def _check_against_simulator(seed, items, stores, speed, basis, years, reps, lead_cv=0.0):
     t = random_two_level(seed, items, stores, speed, basis)
+    t["lead_days_sd"] = lead_cv * t["lead_days"]
     _, cost_err, fill_diff = simulate_against(t, Settings(backorder_basis=basis), years=years, reps=reps)
     print(
-        f"\n{stores} stores, {speed}, {basis}: network cost error max {100 * np.max(np.abs(cost_err)):.2f}%, "
-        f"store fill max {100 * np.max(np.abs(fill_diff)):.2f} points"
+        f"\n{stores} stores, {speed}, {basis}, lead CV {lead_cv}: network cost error max "
+        f"{100 * np.max(np.abs(cost_err)):.2f}%, store fill max {100 * np.max(np.abs(fill_diff)):.2f} points"
     )
     assert np.max(np.abs(cost_err)) <= COST_LIMIT
     assert np.max(np.abs(fill_diff)) <= FILL_LIMIT
@@ -275,13 +276,7 @@ def test_two_level_against_simulator_more(seed, items, stores, speed, basis):
 def test_two_level_random_lead_times_against_simulator(seed, items, stores, speed, basis):
     """Gamma lead times (coefficient of variation 0.25 at the warehouse and the stores; the simulator's orders
     do not cross): the same limits."""
-    t = random_two_level(seed, items, stores, speed, basis)
-    t["lead_days_sd"] = 0.25 * t["lead_days"]
-    _, cost_err, fill_diff = simulate_against(t, Settings(backorder_basis=basis), years=100.0, reps=8)
-    print(f"\n{stores} stores, {speed}, lead CV 0.25: cost error max {100 * np.max(np.abs(cost_err)):.2f}%, "
-          f"fill max {100 * np.max(np.abs(fill_diff)):.2f} points")
-    assert np.max(np.abs(cost_err)) <= COST_LIMIT
-    assert np.max(np.abs(fill_diff)) <= FILL_LIMIT
+    _check_against_simulator(seed, items, stores, speed, basis, years=100.0, reps=8, lead_cv=0.25)
 
 
 def three_level(seed: int, n_items: int) -> pd.DataFrame:
